@@ -1,0 +1,28 @@
+# Two commands set a fresh machine up: `make demo` and `make test`.
+PYTHON ?= python3
+VENV := .venv
+PY := $(VENV)/bin/python
+STAMP := $(VENV)/.installed
+
+.PHONY: install demo test bench clean
+
+$(STAMP): pyproject.toml
+	test -x $(PY) || $(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+install: $(STAMP)
+
+demo: $(STAMP)
+	$(PY) examples/frost/make_data.py --out examples/frost/stations.svm
+	$(VENV)/bin/bittune replay configs/frost-marina.yaml --job examples/frost/job.yaml --seeds 3
+
+test: $(STAMP)
+	$(PY) -m pytest -q
+
+bench: $(STAMP)
+	$(PY) benchmarks/engine.py
+
+clean:
+	rm -rf $(VENV) build src/*.egg-info .pytest_cache

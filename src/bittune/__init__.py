@@ -1,0 +1,7 @@
+"""bittune: tune communication-compressed distributed optimizers before the expensive run."""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+__all__ = ["__version__"]

@@ -1,0 +1,287 @@
+"""YAML in and out: a strict safe loader, a numpy-aware dumper, atomic writes,
+and the declared-schema checker that ``job.py`` and ``config.py`` share.
+
+The loader fixes two YAML 1.1 traps (STYLE.md, "YAML"): duplicate keys are an
+error instead of last-one-wins, and ``1e-3`` is a float instead of a string.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import numbers
+import os
+import re
+import stat
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import yaml
+
+from bittune.errors import InputError
+
+__all__ = [
+    "load_yaml", "parse_yaml", "read_bytes", "dump_yaml", "atomic_write_text",
+    "REQUIRED", "Param", "check_mapping", "unknown_key", "show",
+]
+
+# YAML 1.2 core schema float (YAML 1.2.2 spec, section 10.3.2 "Core Schema"):
+# [-+]? ( \. [0-9]+ | [0-9]+ ( \. [0-9]* )? ) ( [eE] [-+]? [0-9]+ )?
+# PyYAML implements YAML 1.1, whose float needs a dot and a signed exponent,
+# so ``1e-3`` and ``1E5`` would stay strings. This regex also matches plain
+# integers, but resolvers are tried in order and ours is appended after the
+# built-in int resolver, so ``12`` still loads as an int.
+_FLOAT_12 = re.compile(r"^[-+]?(?:\.[0-9]+|[0-9]+(?:\.[0-9]*)?)(?:[eE][-+]?[0-9]+)?$")
+_MERGE_TAG = "tag:yaml.org,2002:merge"
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """SafeLoader + YAML 1.2 floats + duplicate keys rejected with their line."""
+
+    source = "<yaml>"
+
+    def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict:
+        seen: dict[Any, int] = {}
+        for key_node, _ in node.value:
+            if key_node.tag == _MERGE_TAG or not isinstance(key_node, yaml.ScalarNode):
+                continue  # merge keys may be overridden; complex keys: the base class decides
+            key = self.construct_object(key_node)
+            line = key_node.start_mark.line + 1
+            if key in seen:
+                raise InputError(f"{self.source}:{line}: duplicate key {key!r} "
+                                 f"(first at line {seen[key]})")
+            seen[key] = line
+        return super().construct_mapping(node, deep=deep)
+
+
+_StrictLoader.add_implicit_resolver("tag:yaml.org,2002:float", _FLOAT_12, list("-+.0123456789"))
+
+
+def read_bytes(path: str | os.PathLike) -> bytes:
+    """The bytes of a user's file; a missing or unreadable file is an InputError."""
+    p = Path(path)
+    try:
+        return p.read_bytes()
+    except FileNotFoundError:
+        raise InputError(f"file not found: {p.absolute()}") from None
+    except IsADirectoryError:
+        raise InputError(f"not a file: {p.absolute()}") from None
+    except OSError as exc:
+        raise InputError(f"cannot read {p.absolute()}: {exc.strerror}") from None
+
+
+def parse_yaml(data: bytes | str, *, source: str) -> object:
+    """Parse YAML text with the strict loader; errors name ``source`` and the line."""
+    loader = _StrictLoader(data)
+    loader.source = source
+    try:
+        return loader.get_single_data()
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        where = f"{source}:{mark.line + 1}" if mark is not None else source
+        what = "; ".join(s for s in (exc.context, exc.problem) if s)
+        raise InputError(f"{where}: invalid YAML: {what}") from None
+    except yaml.YAMLError as exc:  # e.g. bytes that are not UTF-8/UTF-16
+        raise InputError(f"{source}: invalid YAML: {exc}") from None
+    finally:
+        loader.dispose()
+
+
+def load_yaml(path: str | os.PathLike) -> object:
+    """Read a user's YAML file safely (see the module docstring)."""
+    return parse_yaml(read_bytes(path), source=str(path))
+
+
+def _plain(obj: Any) -> Any:
+    """Numpy scalars/arrays, tuples and paths -> plain Python, recursively."""
+    if isinstance(obj, dict):
+        return {_plain(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _plain(obj.tolist())
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, os.PathLike):
+        return os.fspath(obj)
+    return obj
+
+
+def dump_yaml(data: Any) -> str:
+    """YAML text of ``data`` in its own key order; numpy values become plain numbers."""
+    return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True)
+
+
+def _new_file_mode() -> int:
+    """Mode a plain ``open(path, "w")`` would give a new file (0o666 minus umask)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            umask = next(int(ln.split()[1], 8) for ln in fh if ln.startswith("Umask:"))
+    except (OSError, StopIteration, ValueError):
+        umask = 0o022  # common practice, no source: the usual default umask
+    return 0o666 & ~umask
+
+
+def atomic_write_text(path: str | os.PathLike, text: str) -> None:
+    """Replace ``path`` by ``text`` atomically: readers see the old file or the new one.
+
+    Temp file in the same folder (so ``os.replace`` is a rename on one file
+    system), fsync, replace. On any failure the temp file is removed and the
+    previous file is left untouched.
+    """
+    target = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        try:
+            mode = stat.S_IMODE(target.stat().st_mode)
+        except FileNotFoundError:
+            mode = _new_file_mode()
+        os.chmod(tmp, mode)  # mkstemp makes 0o600; keep the usual permissions
+        os.replace(tmp, target)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+
+
+# ---------------------------------------------------------------------------
+# Declared schemas (the scikit-learn habit, STYLE.md): one table per section,
+# key -> Param, one message format, every problem of a file collected.
+
+
+class _Required:
+    def __repr__(self) -> str:
+        return "REQUIRED"
+
+
+#: Default of a key that must be given.
+REQUIRED: Any = _Required()
+
+
+@dataclass(frozen=True)
+class Param:
+    """Constraint of one key: kind, interval or options, default.
+
+    ``kind`` is ``int``, ``real``, ``bool``, ``str`` or ``choice``. ``low`` and
+    ``high`` bound numbers; ``closed`` says which ends are included
+    (``both``, ``left``, ``right``, ``neither``). A ``None`` value in a file
+    means "not given".
+    """
+
+    kind: str
+    low: float | None = None
+    high: float | None = None
+    closed: str = "both"
+    options: tuple[str, ...] = ()
+    default: Any = None
+
+    def describe(self) -> str:
+        if self.kind == "bool":
+            return "true or false"
+        if self.kind == "str":
+            return "a non-empty string"
+        if self.kind == "choice":
+            return "one of " + ", ".join(self.options)
+        noun = "an integer" if self.kind == "int" else "a number"
+        lo_in, hi_in = self.closed in ("both", "left"), self.closed in ("both", "right")
+        if self.low is not None and self.high is not None:
+            return (f"{noun} in {'[' if lo_in else '('}{self.low:g}, "
+                    f"{self.high:g}{']' if hi_in else ')'}")
+        if self.low is not None:
+            return f"{noun} {'>=' if lo_in else '>'} {self.low:g}"
+        if self.high is not None:
+            return f"{noun} {'<=' if hi_in else '<'} {self.high:g}"
+        return noun
+
+    def coerce(self, value: Any) -> tuple[bool, Any]:
+        """``(True, normalised value)`` if ``value`` satisfies the constraint."""
+        if self.kind == "bool":
+            return isinstance(value, (bool, np.bool_)), bool(value)
+        if self.kind in ("str", "choice"):
+            if isinstance(value, numbers.Integral) and not isinstance(value, (bool, np.bool_)):
+                value = str(value)  # a column named 2020 loads as an int
+            ok = isinstance(value, str) and value.strip() != ""
+            return ok and (self.kind == "str" or value in self.options), value
+        number = _as_number(value)
+        if number is None or not math.isfinite(number):
+            return False, value
+        if self.kind == "int":
+            if not float(number).is_integer():
+                return False, value
+            number = int(number)
+        else:
+            number = float(number)
+        lo_in, hi_in = self.closed in ("both", "left"), self.closed in ("both", "right")
+        if self.low is not None and (number < self.low or (number == self.low and not lo_in)):
+            return False, value
+        if self.high is not None and (number > self.high or (number == self.high and not hi_in)):
+            return False, value
+        return True, number
+
+
+def _as_number(value: Any) -> float | int | None:
+    """Numbers, numpy numbers and numeric strings (``'1e-3'``); booleans are not numbers."""
+    if isinstance(value, (bool, np.bool_)):
+        return None
+    if isinstance(value, numbers.Integral):
+        return int(value)
+    if isinstance(value, numbers.Real):
+        return float(value)
+    if isinstance(value, str):
+        for convert in (int, float):
+            try:
+                return convert(value.strip())
+            except ValueError:
+                pass
+    return None
+
+
+def show(value: Any, limit: int = 60) -> str:
+    """Short repr of a user's value for error messages."""
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def unknown_key(path: str, key: Any, known: list[str]) -> str:
+    """``workers.cout: unknown key (did you mean 'count'?)``."""
+    close = difflib.get_close_matches(str(key), known, n=1)
+    hint = f"did you mean {close[0]!r}?" if close else "expected one of " + ", ".join(known)
+    return f"{path}: unknown key ({hint})"
+
+
+def check_mapping(
+    mapping: dict, schema: dict[str, Param], *, prefix: str, problems: list[str],
+    allow_unknown: bool = False,
+) -> dict[str, Any]:
+    """Check ``mapping`` against ``schema``; append messages to ``problems``.
+
+    Returns the valid values with defaults filled in; keys that are missing or
+    invalid are left out (callers check ``problems`` before building anything).
+    """
+    values: dict[str, Any] = {}
+    if not allow_unknown:
+        problems.extend(unknown_key(prefix + str(k), k, list(schema))
+                        for k in mapping if k not in schema)
+    for key, param in schema.items():
+        value = mapping.get(key)
+        if value is None:
+            if param.default is REQUIRED:
+                problems.append(f"{prefix}{key}: required")
+            else:
+                values[key] = param.default
+            continue
+        ok, normalised = param.coerce(value)
+        if ok:
+            values[key] = normalised
+        else:
+            problems.append(f"{prefix}{key}: must be {param.describe()}, got {show(value)}")
+    return values

@@ -1,0 +1,324 @@
+"""Compressors applied by every worker before it sends a message (DESIGN.md, "compressors.py").
+
+Each compressor works on a whole ``(B, n, d)`` block (B trajectories, n workers)
+with no Python loop over B or n, and returns the exact bit cost of every message.
+Random numbers come from :mod:`bittune._random`: worker i of trajectory b draws
+from (key_b, round, stream, element (i, j)), so a trajectory sees the same
+numbers alone or inside a batch, and the server can regenerate Rand-K's index
+set (its indices cost no bits).
+
+Classes (THEORY.md 1.1): unbiased compressors are in U(omega), E Q(x) = x and
+E||Q(x) - x||^2 <= omega ||x||^2; contractive ones are in B(alpha),
+E||C(x) - x||^2 <= (1 - alpha) ||x||^2. For an unbiased compressor ``alpha`` is
+1/(1 + omega), the contraction of Q/(1 + omega).
+
+Bit costs (THEORY.md 1.2, our cost model): 32-bit floats, ceil(log2 d) bits per
+index when indices depend on the data.
+"""
+
+from __future__ import annotations
+
+import math
+from abc import ABC, abstractmethod
+from collections.abc import Mapping
+from typing import Any, ClassVar
+
+import numpy as np
+
+from bittune._random import STREAM, random_bits, uniform
+from bittune.errors import InputError
+
+__all__ = [
+    "Compressor", "Identity", "RandK", "TopK", "Dither", "Natural",
+    "COMPRESSORS", "parse_spec", "make_compressor",
+]
+
+_FLOAT_BITS = 32  # one float32 value
+
+
+def _ceil_log2(x: int) -> int:
+    """ceil(log2 x) for an integer x >= 1, exact (no floating-point log)."""
+    return (int(x) - 1).bit_length()
+
+
+class Compressor(ABC):
+    """Base class. Build instances with :func:`make_compressor` (it validates)."""
+
+    name: ClassVar[str]
+    params: ClassVar[tuple[str, ...]] = ()  # names of the integer parameters, in label order
+    unbiased: bool
+    omega: float
+    alpha: float
+    density: float
+    nominal_bits: float
+
+    def __init__(self, dim: int) -> None:
+        self.dim = int(dim)
+
+    def _set_unbiased(self, omega: float) -> None:
+        self.unbiased = True
+        self.omega = float(omega)
+        self.alpha = 1.0 / (1.0 + self.omega)  # Q/(1+omega) is in B(1/(1+omega)), THEORY.md 1.1
+
+    def compress(
+        self, v: np.ndarray, keys: np.ndarray, round_: int
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Compress every message of a ``(B, n, d)`` block.
+
+        Returns the compressed block (float64, same shape, ``v`` untouched) and
+        the exact bits of each message, float64 of shape ``(B, n)``.
+        """
+        v = np.asarray(v, dtype=np.float64)
+        keys = np.asarray(keys, dtype=np.uint64)
+        if v.ndim != 3 or v.shape[2] != self.dim or keys.shape != (v.shape[0],):
+            raise ValueError(
+                f"{self.label()}: expected v of shape (B, n, {self.dim}) and keys of shape (B,),"
+                f" got {v.shape} and {keys.shape}"
+            )
+        return self._apply(v, keys, int(round_))
+
+    @abstractmethod
+    def _apply(
+        self, v: np.ndarray, keys: np.ndarray, round_: int
+    ) -> tuple[np.ndarray, np.ndarray]: ...
+
+    def _fixed_bits(self, v: np.ndarray) -> np.ndarray:
+        return np.full(v.shape[:2], float(self.nominal_bits), dtype=np.float64)
+
+    @staticmethod
+    def _draw(keys: np.ndarray, round_: int, v: np.ndarray) -> np.ndarray:
+        """Uniforms of shape (B, n, d): worker i of trajectory b gets its own numbers."""
+        return uniform(keys, round_, STREAM["compress"], v.shape[1:])
+
+    def spec(self) -> dict[str, Any]:
+        """Config form, e.g. ``{"name": "rand_k", "k": 6}``."""
+        return {"name": self.name, **{p: int(getattr(self, p)) for p in self.params}}
+
+    def label(self) -> str:
+        """Short text form, e.g. ``"rand_k:6"``; :func:`parse_spec` reads it back."""
+        return ":".join([self.name, *(str(getattr(self, p)) for p in self.params)])
+
+    def __repr__(self) -> str:
+        return f"{type(self).__name__}({self.label()!r}, dim={self.dim})"
+
+
+class Identity(Compressor):
+    """Q(x) = x: omega = 0, a dense float32 vector (32 d bits)."""
+
+    name = "identity"
+
+    def __init__(self, dim: int) -> None:
+        super().__init__(dim)
+        self._set_unbiased(0.0)
+        self.density = float(dim)
+        self.nominal_bits = float(_FLOAT_BITS * dim)
+
+    def _apply(self, v, keys, round_):
+        return v.copy(), self._fixed_bits(v)
+
+
+class RandK(Compressor):
+    """Rand-K: Q(x) = (d/K) x_S for a uniform K-subset S; omega = d/K - 1 (THEORY.md 1.2).
+
+    S is the set of the K smallest of d uniforms, a uniform K-subset. It comes
+    from the shared seed, so only the K values are sent: 32 K bits.
+    """
+
+    name = "rand_k"
+    params = ("k",)
+
+    def __init__(self, dim: int, k: int) -> None:
+        super().__init__(dim)
+        self.k = int(k)
+        self._set_unbiased(dim / k - 1.0)
+        self.density = float(k)
+        self.nominal_bits = float(_FLOAT_BITS * k)
+
+    def _apply(self, v, keys, round_):
+        if self.k == self.dim:  # S is everything and d/K = 1
+            return v.copy(), self._fixed_bits(v)
+        # The K smallest of d random words: a uniform K-subset (ties have
+        # probability about d^2 / 2^64).
+        words = random_bits(keys, round_, STREAM["compress"], v.shape[1:])
+        idx = np.argpartition(words, self.k - 1, axis=-1)[..., : self.k]
+        out = np.zeros_like(v)
+        np.put_along_axis(out, idx, np.take_along_axis(v, idx, axis=-1) * (self.dim / self.k), -1)
+        return out, self._fixed_bits(v)
+
+
+class TopK(Compressor):
+    """Top-K: keep the K largest |x_j|; contractive with alpha = K/d (Stich, Cordonnier,
+    Jaggi, "Sparsified SGD with Memory", NeurIPS 2018). Indices depend on the data:
+    K (32 + ceil(log2 d)) bits."""
+
+    name = "top_k"
+    params = ("k",)
+
+    def __init__(self, dim: int, k: int) -> None:
+        super().__init__(dim)
+        self.k = int(k)
+        self.unbiased = False
+        self.omega = math.inf
+        self.alpha = k / dim
+        self.density = float(k)
+        self.nominal_bits = float(k * (_FLOAT_BITS + _ceil_log2(dim)))
+
+    def _apply(self, v, keys, round_):
+        idx = np.argpartition(np.abs(v), self.dim - self.k, axis=-1)[..., self.dim - self.k :]
+        out = np.zeros_like(v)
+        np.put_along_axis(out, idx, np.take_along_axis(v, idx, axis=-1), -1)
+        return out, self._fixed_bits(v)
+
+
+class Dither(Compressor):
+    """Random dithering (QSGD) with s levels and the l2 norm.
+
+    Q(x)_j = ||x|| sign(x_j) xi_j / s, xi_j in {l, l+1}, l = floor(s|x_j|/||x||),
+    P(l+1) = s|x_j|/||x|| - l (unbiased). Alistarh, Grubic, Li, Tomioka, Vojnovic,
+    "QSGD", NeurIPS 2017, Lemma 3.1: omega = min(d/s^2, sqrt(d)/s), expected
+    nnz <= min(d, s(s + sqrt d)). Bits (THEORY.md 1.2, our model): 32 (norm) + 1
+    (format flag) + the cheaper of dense fixed width, d (1 + ceil(log2(s+1))), and
+    sparse, nnz (1 + ceil(log2 d) + ceil(log2 s)).
+    """
+
+    name = "dither"
+    params = ("levels",)
+
+    def __init__(self, dim: int, levels: int) -> None:
+        super().__init__(dim)
+        s = self.levels = int(levels)
+        self._set_unbiased(min(dim / s**2, math.sqrt(dim) / s))
+        self.density = min(float(dim), s * (s + math.sqrt(dim)))
+        self._dense_bits = dim * (1 + _ceil_log2(s + 1))
+        self._bits_per_nz = 1 + _ceil_log2(dim) + _ceil_log2(s)
+        self.nominal_bits = float(self._message_bits(self.density))
+
+    def _message_bits(self, nnz):
+        return _FLOAT_BITS + 1 + np.minimum(self._dense_bits, nnz * self._bits_per_nz)
+
+    def _apply(self, v, keys, round_):
+        s = self.levels
+        a = np.abs(v)
+        # ||x|| = m ||x/m|| with m = max|x_j|: no overflow for huge finite vectors.
+        m = a.max(axis=-1, keepdims=True)
+        ok = np.isfinite(m) & (m > 0)  # zero rows give zero; non-finite rows pass through
+        scale = np.where(ok, m, 1.0)
+        r = a / scale
+        q = np.sqrt(np.sum(r * r, axis=-1, keepdims=True))  # ||x|| / m, in [1, sqrt d] if ok
+        q = np.where(ok, q, 1.0)
+        u = np.where(ok, np.minimum(s * r / q, s), 0.0)  # s|x_j|/||x||
+        low = np.floor(u)
+        xi = low + (self._draw(keys, round_, v) < u - low)
+        with np.errstate(over="ignore"):  # only if the true value exceeds float64: inf, as it is
+            out = np.where(ok, np.sign(v) * (scale * (xi * (q / s))), v)
+        bits = self._message_bits(np.count_nonzero(xi, axis=-1)).astype(np.float64)
+        return out, bits
+
+
+class Natural(Compressor):
+    """Natural compression (Horvath, Ho, Horvath, Sahu, Canini, Richtarik, "Natural
+    Compression for Distributed Deep Learning", 2019): each non-zero t is rounded at
+    random to 2^a or 2^(a+1), 2^a <= |t| < 2^(a+1), P(up) = (|t| - 2^a)/2^a, sign
+    kept. omega = 1/8; 9 bits per coordinate (sign + float32 exponent)."""
+
+    name = "natural"
+
+    def __init__(self, dim: int) -> None:
+        super().__init__(dim)
+        self._set_unbiased(1.0 / 8.0)
+        self.density = float(dim)
+        self.nominal_bits = float(9 * dim)
+
+    def _apply(self, v, keys, round_):
+        mant, expo = np.frexp(v)  # v = mant 2^expo, |mant| in [1/2, 1): 2^a = 2^(expo-1)
+        p_up = 2.0 * np.abs(mant) - 1.0  # (|t| - 2^a)/2^a; 0 on exact powers of two, -1 on 0
+        half_or_one = np.where(self._draw(keys, round_, v) < p_up, 1.0, 0.5)
+        with np.errstate(over="ignore"):  # rounding up past the largest float64 gives inf
+            out = np.ldexp(np.sign(mant) * half_or_one, expo)
+        return np.where(np.isfinite(v), out, v), self._fixed_bits(v)
+
+
+COMPRESSORS: dict[str, type[Compressor]] = {
+    cls.name: cls for cls in (Identity, RandK, TopK, Dither, Natural)
+}
+
+
+def _as_int(value: Any) -> int | None:
+    """An integer from int, integral float or decimal text; None otherwise (bool too)."""
+    if isinstance(value, (bool, np.bool_)):
+        return None
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return int(value) if float(value).is_integer() else None
+    if isinstance(value, str):
+        try:
+            return int(value.strip(), 10)
+        except ValueError:
+            return None
+    return None
+
+
+def _parse(spec: Any, key: str, dim: int | None) -> dict[str, Any]:
+    known = ", ".join(sorted(COMPRESSORS))
+    if isinstance(spec, str):
+        name, sep, arg = spec.strip().partition(":")
+        name, name_key = name.strip(), key
+        raw: dict[str, Any] = {"name": name}
+        cls = COMPRESSORS.get(name)
+        if sep and cls is not None and not cls.params:
+            raise InputError(f"{key}: {name} takes no parameter, got {spec!r}")
+        if sep and cls is not None:
+            raw[cls.params[0]] = arg
+    elif isinstance(spec, Mapping):
+        raw, name_key = dict(spec), f"{key}.name"
+        if "name" not in raw:
+            raise InputError(f"{name_key}: missing (one of {known})")
+        name = raw["name"]
+    else:
+        raise InputError(
+            f"{key}: must be text like 'rand_k:6' or a mapping with a 'name', got {spec!r}"
+        )
+    if not isinstance(name, str) or name not in COMPRESSORS:
+        raise InputError(f"{name_key}: unknown compressor {name!r} (known: {known})")
+    cls = COMPRESSORS[name]
+    problems, out = [], {"name": name}
+    for p in cls.params:
+        if p not in raw:
+            problems.append(f"{key}.{p}: missing ({name} needs an integer {p}, e.g. '{name}:4')")
+            continue
+        value = _as_int(raw[p])
+        upper = dim if (p == "k" and dim is not None) else None
+        if value is None or value < 1 or (upper is not None and value > upper):
+            shown = raw[p] if value is None else value
+            rule = f"in [1, {upper}]" if upper is not None else ">= 1"
+            problems.append(f"{key}.{p}: must be an integer {rule}, got {shown!r}")
+        else:
+            out[p] = value
+    for extra in sorted(set(raw) - {"name", *cls.params}, key=str):
+        allowed = ", ".join(("name", *cls.params))
+        problems.append(f"{key}.{extra}: unknown key for {name} (allowed: {allowed})")
+    if problems:
+        raise InputError(problems)
+    return out
+
+
+def parse_spec(text_or_mapping: str | Mapping[str, Any], *, key: str = "compressor") -> dict:
+    """Normalise ``"rand_k:6"``, ``"natural"``, ``{"name": "top_k", "k": 3}`` ... to a dict.
+
+    Checks the name, that each parameter is present and an integer >= 1, and
+    that there are no unknown keys; errors (:class:`InputError`) name ``key``.
+    The upper bound k <= d is checked by :func:`make_compressor`.
+    """
+    return _parse(text_or_mapping, key, None)
+
+
+def make_compressor(
+    spec: str | Mapping[str, Any], dim: int, *, key: str = "compressor"
+) -> Compressor:
+    """Validate ``spec`` for dimension ``dim`` (k in [1, dim], levels >= 1) and build it."""
+    if isinstance(dim, (bool, np.bool_)) or not isinstance(dim, (int, np.integer)) or dim < 1:
+        raise ValueError(f"dim must be an integer >= 1, got {dim!r}")
+    params = _parse(spec, key, int(dim))
+    name = params.pop("name")
+    return COMPRESSORS[name](int(dim), **params)

@@ -1,0 +1,54 @@
+"""The error types every stage raises, with the exit code each maps to (DESIGN.md)."""
+
+from __future__ import annotations
+
+__all__ = ["BittuneError", "InputError", "GradientCheckError", "EXIT"]
+
+#: Exit codes of every command (DESIGN.md, "Commands and exit codes").
+EXIT = {
+    "ok": 0,
+    "internal": 1,
+    "input": 2,
+    "gradient_check": 3,
+    "no_candidate": 4,
+    "kept_previous": 5,
+    "storage": 6,
+    "interrupted": 130,
+}
+
+
+class BittuneError(Exception):
+    """Base class: an error bittune explains to the user, with an exit code."""
+
+    exit_code = EXIT["internal"]
+
+
+class InputError(BittuneError):
+    """Invalid usage or input (job, data or config file).
+
+    ``problems`` holds every message found in one file, each starting with its
+    key path or line (``workers.count: must be an integer >= 2, got 1``), so the
+    user sees all of them at once.
+    """
+
+    exit_code = EXIT["input"]
+
+    def __init__(self, problems: str | list[str], *, source: str | None = None):
+        if isinstance(problems, str):
+            problems = [problems]
+        self.problems = list(problems)
+        self.source = source
+        head = f"{source}: " if source else ""
+        if len(self.problems) == 1:
+            text = head + self.problems[0]
+        else:
+            text = head + f"{len(self.problems)} problems\n" + "\n".join(
+                "  " + p for p in self.problems
+            )
+        super().__init__(text)
+
+
+class GradientCheckError(BittuneError):
+    """The model's gradient disagrees with finite differences."""
+
+    exit_code = EXIT["gradient_check"]

@@ -1,0 +1,247 @@
+"""The job spec: schema, defaults, validation, clear errors.
+
+A job file is YAML; paths in it are relative to the job file's folder. Every
+section is declared once in :data:`SECTIONS` (key -> :class:`~bittune._yaml.Param`),
+so a new section is a table entry plus its dataclass, not new code paths.
+All problems of a file are reported together in one :class:`InputError`,
+each starting with its key path (``workers.count: must be an integer >= 1, got 0``).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import warnings
+from copy import deepcopy
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+from bittune._yaml import REQUIRED, Param, check_mapping, parse_yaml, read_bytes, show, unknown_key
+from bittune.errors import InputError
+
+__all__ = [
+    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "Job",
+    "load_job", "parse_job", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
+]
+
+MODELS = ("logistic_nonconvex", "least_squares")
+SPLITS = ("iid", "by_label", "dirichlet", "column")
+DATA_FORMATS = ("svmlight", "csv", "npz")
+#: File extension -> data format, used when ``data.format`` is not given.
+_EXTENSIONS = {".svm": "svmlight", ".svmlight": "svmlight", ".libsvm": "svmlight",
+               ".txt": "svmlight", ".csv": "csv", ".npz": "npz"}
+#: Default ``regularization`` per model.
+_DEFAULT_REGULARIZATION = {"logistic_nonconvex": 0.1, "least_squares": 0.0}
+
+
+@dataclass(frozen=True)
+class DataSpec:
+    path: Path
+    format: str
+    label_column: str | None
+    group_column: str | None
+
+
+@dataclass(frozen=True)
+class WorkersSpec:
+    count: int
+    split: str
+    seed: int
+    dirichlet_alpha: float
+
+
+@dataclass(frozen=True)
+class TargetSpec:
+    grad_norm_sq: float
+    relative: bool
+
+
+@dataclass(frozen=True)
+class BudgetSpec:
+    max_rounds: int
+    max_bits_per_worker: float | None
+
+
+@dataclass(frozen=True)
+class StartSpec:
+    kind: str  # "zeros" | "random" | "file"
+    seed: int | None
+    scale: float
+    path: Path | None
+
+
+@dataclass(frozen=True)
+class Job:
+    path: Path  # the job file (absolute when read by load_job)
+    data: DataSpec
+    model: str
+    regularization: float
+    workers: WorkersSpec
+    target: TargetSpec
+    budget: BudgetSpec
+    start: StartSpec
+    raw: dict = field(repr=False)
+    digest: str  # sha256 hex of the job file bytes
+
+
+#: Top-level keys that hold a single value ("" section).
+TOP = {
+    "model": Param("choice", options=MODELS, default=REQUIRED),
+    # the default depends on the model, filled in by parse_job
+    "regularization": Param("real", low=0.0),
+}
+
+#: Section name -> key -> constraint. Declare a new section here.
+SECTIONS: dict[str, dict[str, Param]] = {
+    "data": {
+        "path": Param("str", default=REQUIRED),
+        "format": Param("choice", options=DATA_FORMATS),  # None: from the extension
+        "label_column": Param("str"),
+        "group_column": Param("str"),
+    },
+    "workers": {
+        "count": Param("int", low=1, default=REQUIRED),
+        "split": Param("choice", options=SPLITS, default=REQUIRED),
+        "seed": Param("int", low=0, default=0),
+        "dirichlet_alpha": Param("real", low=0, closed="right", default=1.0),
+    },
+    "target": {
+        "grad_norm_sq": Param("real", low=0, closed="right", default=REQUIRED),
+        "relative": Param("bool", default=True),
+    },
+    "budget": {
+        "max_rounds": Param("int", low=1, default=REQUIRED),
+        "max_bits_per_worker": Param("real", low=0, closed="right"),
+    },
+    "start": {
+        "seed": Param("int", low=0),
+        "scale": Param("real", low=0, closed="right", default=1.0),
+        "file": Param("str"),
+    },
+}
+#: Sections whose absence is reported as ``<name>: required`` (others act as ``{}``).
+_REQUIRED_SECTIONS = ("data",)
+#: A plain string given for these sections stands for ``{key: string}``.
+_SHORTHAND = {"data": "path"}
+#: key -> (the setting that must hold for it to be used, human condition).
+_USED_ONLY_IF = {
+    "workers.dirichlet_alpha": (lambda v: v["workers"].get("split") == "dirichlet",
+                                "workers.split is dirichlet"),
+    "start.scale": (lambda v: v["start"].get("seed") is not None, "start.seed is set"),
+}
+
+
+def load_job(path: str | os.PathLike) -> Job:
+    """Read and validate a job file (see the module docstring)."""
+    p = Path(path)
+    data = read_bytes(p)
+    mapping = parse_yaml(data, source=str(p))
+    job = parse_job(mapping, base_dir=p.absolute().parent, source=str(p),
+                    digest=hashlib.sha256(data).hexdigest())
+    return replace(job, path=p.absolute())
+
+
+def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None = None) -> Job:
+    """Validate a job mapping; relative paths are resolved against ``base_dir``.
+
+    ``digest`` is the sha256 of the job file's bytes; when the mapping did not
+    come from a file it defaults to the sha256 of the mapping as canonical JSON.
+    Raises one :class:`InputError` listing every problem found.
+    """
+    if not isinstance(mapping, dict):
+        raise InputError(f"top level: must be a mapping of job sections, got {show(mapping)}",
+                         source=source)
+    problems: list[str] = []
+    known = list(TOP) + list(SECTIONS)
+    problems += [unknown_key(str(k), k, known) for k in mapping if k not in known]
+    values = {"": check_mapping({k: mapping.get(k) for k in TOP}, TOP, prefix="", problems=problems)}
+    for name, schema in SECTIONS.items():
+        raw = mapping.get(name)
+        if raw is None and name in _REQUIRED_SECTIONS:
+            problems.append(f"{name}: required")
+            values[name] = {}
+            continue
+        if isinstance(raw, str) and name in _SHORTHAND:
+            raw = {_SHORTHAND[name]: raw}
+        if raw is not None and not isinstance(raw, dict):
+            problems.append(f"{name}: must be a mapping, got {show(raw)}")
+            values[name] = {}
+            continue
+        values[name] = check_mapping(raw or {}, schema, prefix=f"{name}.", problems=problems)
+    given = {f"{s}.{k}" for s in SECTIONS if isinstance(mapping.get(s), dict)
+             for k, v in mapping[s].items() if v is not None}
+    data, start = _check_data(values, base_dir, problems), _check_start(values, base_dir, problems)
+    if problems:
+        raise InputError(problems, source=source)
+    for key, (used, condition) in _USED_ONLY_IF.items():
+        if key in given and not used(values):
+            warnings.warn(f"{source}: {key}: ignored unless {condition}", UserWarning, stacklevel=2)
+    top = values[""]
+    if top["regularization"] is None:
+        top["regularization"] = _DEFAULT_REGULARIZATION[top["model"]]
+    if digest is None:
+        canonical = json.dumps(mapping, sort_keys=True, default=str).encode()
+        digest = hashlib.sha256(canonical).hexdigest()
+    return Job(
+        path=Path(source), data=data, model=top["model"], regularization=top["regularization"],
+        workers=WorkersSpec(**values["workers"]), target=TargetSpec(**values["target"]),
+        budget=BudgetSpec(**values["budget"]), start=start, raw=deepcopy(mapping), digest=digest,
+    )
+
+
+def _resolve(base_dir: Path, text: str) -> Path:
+    """Absolute, normalised path of ``text`` relative to ``base_dir`` (``~`` expanded)."""
+    return Path(os.path.abspath(Path(base_dir) / Path(text).expanduser()))
+
+
+def _existing_file(key: str, base_dir: Path, text: str, problems: list[str]) -> Path:
+    p = _resolve(base_dir, text)
+    if not p.exists():
+        problems.append(f"{key}: file not found: {p}")
+    elif not p.is_file():
+        problems.append(f"{key}: not a file: {p}")
+    return p
+
+
+def _check_data(values: dict, base_dir: Path, problems: list[str]) -> DataSpec | None:
+    """Path exists; format given or inferred; columns fit the format and the split."""
+    v = values["data"]
+    if "path" not in v:
+        return None
+    path = _existing_file("data.path", base_dir, v["path"], problems)
+    fmt = v.get("format") or _EXTENSIONS.get(path.suffix.lower())
+    if fmt is None:
+        if "format" not in v:  # given but invalid: already reported
+            return None
+        problems.append(f"data.format: cannot infer the format from the extension "
+                        f"{path.suffix!r} of {path.name}; set it to one of {', '.join(DATA_FORMATS)}")
+        return None
+    if fmt == "csv" and "label_column" in v and v["label_column"] is None:
+        problems.append("data.label_column: required for csv data")
+    if fmt != "csv":
+        problems += [f"data.{k}: only used for csv data, but the format is {fmt}"
+                     for k in ("label_column", "group_column") if v.get(k) is not None]
+    if values["workers"].get("split") == "column":
+        if fmt == "csv" and "group_column" in v and v["group_column"] is None:
+            problems.append("data.group_column: required for workers.split: column")
+        elif fmt == "svmlight":
+            problems.append("workers.split: column needs group ids, which svmlight data cannot "
+                            "hold (use csv with data.group_column, or npz with an array 'groups')")
+    return DataSpec(path=path, format=fmt, label_column=v.get("label_column"),
+                    group_column=v.get("group_column"))
+
+
+def _check_start(values: dict, base_dir: Path, problems: list[str]) -> StartSpec:
+    """zeros (default), random (seed, scale) or file; never both seed and file."""
+    v: dict[str, Any] = values["start"]
+    seed, scale, file = v.get("seed"), v.get("scale", 1.0), v.get("file")
+    if seed is not None and file is not None:
+        problems.append("start: give either seed (random start) or file, not both")
+    if file is not None:
+        return StartSpec(kind="file", seed=None, scale=scale,
+                         path=_existing_file("start.file", base_dir, file, problems))
+    if seed is not None:
+        return StartSpec(kind="random", seed=seed, scale=scale, path=None)
+    return StartSpec(kind="zeros", seed=None, scale=scale, path=None)

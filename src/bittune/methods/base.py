@@ -1,0 +1,60 @@
+"""The interface every method implements, and the state handling they share.
+
+A method turns the local gradients at the current iterates into the direction
+g^k that the engine steps along (x^{k+1} = x^k - gamma g^k), and says how many
+bits each worker sent to produce it. It advances B trajectories at once:
+parameters are (B,) arrays, state arrays have B as their leading axis, and no
+Python loop runs over trajectories or workers.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from typing import ClassVar
+
+import numpy as np
+
+__all__ = ["Method", "dense_bits"]
+
+
+def dense_bits(dim: int) -> float:
+    """Bits of one dense float32 vector (THEORY.md 1.2: b_full = 32 d)."""
+    return 32.0 * dim
+
+
+class Method(ABC):
+    #: Name used in configs and job files.
+    name: ClassVar[str] = ""
+    #: Per-trajectory parameters besides the step size, with their defaults
+    #: (a callable of the compressor, or None when the parameter is required).
+    params: ClassVar[dict[str, object]] = {}
+
+    def __init__(self, *, compressor, n_workers: int, dim: int, batch: int, **params):
+        self.compressor = compressor
+        self.n = int(n_workers)
+        self.d = int(dim)
+        self.p: dict[str, np.ndarray] = {}
+        for key, default in self.params.items():
+            value = params.pop(key, None)
+            if value is None:
+                if default is None:
+                    raise ValueError(f"{self.name}: parameter {key!r} is required")
+                value = default(compressor)
+            self.p[key] = np.broadcast_to(np.asarray(value, dtype=np.float64), (batch,)).copy()
+        if params:
+            raise ValueError(f"{self.name}: unknown parameters {sorted(params)}")
+        self.state: dict[str, np.ndarray] = {}
+
+    @abstractmethod
+    def direction(
+        self, grads: np.ndarray, keys: np.ndarray, round_: int
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Direction (B, d) from local gradients (B, n, d) at x^k, and uplink bits (B, n)."""
+
+    def keep(self, index: np.ndarray) -> None:
+        """Drop finished trajectories: keep rows ``index`` of every array."""
+        self.p = {k: v[index] for k, v in self.p.items()}
+        self.state = {k: v[index] for k, v in self.state.items()}
+
+    def _dense(self, grads: np.ndarray) -> np.ndarray:
+        return np.full(grads.shape[:2], dense_bits(self.d))

@@ -1,0 +1,19 @@
+"""Distributed gradient descent, uncompressed: every worker sends its dense gradient.
+
+Reference: Nesterov, "Introductory Lectures on Convex Optimization" (2004), 1.2.3.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .base import Method
+
+__all__ = ["GD"]
+
+
+class GD(Method):
+    name = "gd"
+
+    def direction(self, grads, keys, round_):
+        return grads.mean(axis=1), self._dense(grads)

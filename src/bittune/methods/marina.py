@@ -1,0 +1,36 @@
+"""MARINA: compressed gradient differences with rare dense synchronisation.
+
+g^0 = grad f(x^0). Then each round a coin c ~ Bernoulli(p), shared by the
+workers of a trajectory: if c = 1 every worker sends its dense gradient,
+else g^{k+1} = g^k + (1/n) sum_i Q_i(grad f_i(x^{k+1}) - grad f_i(x^k)).
+Gorbunov, Burlachenko, Li, Richtarik, "MARINA: Faster Non-Convex Distributed
+Learning with Compression" (ICML 2021), Algorithm 1.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .._random import STREAM, uniform
+from .base import Method
+
+__all__ = ["MARINA"]
+
+
+class MARINA(Method):
+    name = "marina"
+    params = {"sync_probability": lambda c: min(1.0, c.density / c.dim)}
+
+    def direction(self, grads, keys, round_):
+        if "g" not in self.state:
+            self.state["g"] = grads.mean(axis=1)
+            self.state["prev"] = grads.copy()
+            return self.state["g"].copy(), self._dense(grads)
+        sync = uniform(keys, round_, STREAM["coin"], (1,))[:, 0] < self.p["sync_probability"]
+        q, bits = self.compressor.compress(grads - self.state["prev"], keys, round_)
+        g = self.state["g"] + q.mean(axis=1)
+        g[sync] = grads[sync].mean(axis=1)
+        bits[sync] = self._dense(grads)[sync]
+        self.state["g"] = g
+        self.state["prev"] = grads.copy()
+        return g.copy(), bits

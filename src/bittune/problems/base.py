@@ -1,0 +1,120 @@
+"""What every model offers the engine and the probe: a batched local-gradient oracle."""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+
+import numpy as np
+
+from ._shards import Block, Shards
+
+__all__ = ["Problem"]
+
+
+class Problem(ABC):
+    """f(x) = (1/n) sum_i f_i(x), each f_i the model's loss on worker i's rows.
+
+    The oracle is batched: :meth:`local_grads` takes B iterates, shape (B, d)
+    (all workers at one point) or (B, n, d) (worker i at ``X[:, i]``), and
+    returns every worker's gradient, shape (B, n, d), in one pass over the data.
+    """
+
+    #: Name used in job files.
+    name: str = ""
+
+    def __init__(self, shards: Shards, *, regularization: float):
+        self.shards = shards
+        self.regularization = float(regularization)
+
+    @property
+    def n_workers(self) -> int:
+        return self.shards.n
+
+    @property
+    def dim(self) -> int:
+        return self.shards.dim
+
+    @property
+    def worker_sizes(self) -> np.ndarray:
+        return self.shards.sizes
+
+    # --------------------------------------------------------------- oracle
+    def local_grads(
+        self, X: np.ndarray, *, with_loss: bool = False
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Gradients (B, n, d) of every f_i, and their values (B, n) if asked."""
+        X = self._check(X)
+        B, n, d = X.shape[0], self.n_workers, self.dim
+        grads = np.empty((B, n, d))
+        loss = np.empty((B, n)) if with_loss else None
+
+        def work(blk: Block) -> None:
+            z = blk.forward(X)
+            if loss is not None:
+                loss[:, blk.lo : blk.hi] = self._data_loss(z, blk)
+            out = grads[:, blk.lo : blk.hi]
+            blk.backward(self._residual_weights(z, blk), out)
+            out *= (1.0 / blk.sizes)[None, :, None]
+
+        self.shards.run(work)
+        Xw = X if X.ndim == 3 else X[:, None, :]
+        grads += self._reg_grad(Xw)
+        if loss is not None:
+            loss += self._reg_value(Xw)
+        return grads, loss
+
+    def local_losses(self, X: np.ndarray) -> np.ndarray:
+        """Values (B, n) of every f_i."""
+        X = self._check(X)
+        loss = np.empty((X.shape[0], self.n_workers))
+
+        def work(blk: Block) -> None:
+            loss[:, blk.lo : blk.hi] = self._data_loss(blk.forward(X), blk)
+
+        self.shards.run(work)
+        return loss + self._reg_value(X if X.ndim == 3 else X[:, None, :])
+
+    def _check(self, X) -> np.ndarray:
+        X = np.asarray(X, dtype=np.float64)
+        ok = X.ndim == 2 or (X.ndim == 3 and X.shape[1] == self.n_workers)
+        if not ok or X.shape[-1] != self.dim:
+            raise ValueError(f"X must have shape (B, {self.dim}) or (B, {self.n_workers}, {self.dim}), got {X.shape}")
+        return X
+
+    def full_grad(self, x: np.ndarray) -> np.ndarray:
+        """Gradient of f at one point, shape (d,)."""
+        g, _ = self.local_grads(np.asarray(x, dtype=np.float64)[None, :])
+        return g[0].mean(axis=0)
+
+    def full_loss(self, x: np.ndarray) -> float:
+        """f at one point."""
+        return float(self.local_losses(np.asarray(x, dtype=np.float64)[None, :])[0].mean())
+
+    # ---------------------------------------------------------- model parts
+    @abstractmethod
+    def _data_loss(self, z: np.ndarray, blk: Block) -> np.ndarray:
+        """Mean data loss per worker of the block, (B, nb), from margins z (B, nb, m_max)."""
+
+    @abstractmethod
+    def _residual_weights(self, z: np.ndarray, blk: Block) -> np.ndarray:
+        """Per-row derivative of the data loss in z, (B, nb, m_max); may overwrite z.
+
+        Padded rows may get any finite weight: their data rows are zero.
+        """
+
+    @abstractmethod
+    def _reg_value(self, Xw: np.ndarray) -> np.ndarray:
+        """Regulariser value broadcast to (B, n)."""
+
+    @abstractmethod
+    def _reg_grad(self, Xw: np.ndarray) -> np.ndarray:
+        """Regulariser gradient, broadcastable to (B, n, d)."""
+
+    # ---------------------------------------------------------- constants
+    @abstractmethod
+    def smoothness_bounds(self) -> tuple[np.ndarray, float]:
+        """Closed-form upper bounds: per-worker L_i (n,) and L of f (THEORY.md 3.2)."""
+
+    def loss_lower_bound(self) -> float:
+        """A lower bound on f (every model here has non-negative loss)."""
+        return 0.0

@@ -1,0 +1,42 @@
+"""Shared fixtures: small problems built from open or generated data."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from bittune.problems import problem_from_arrays
+
+
+def breast_cancer_problem(n_workers: int = 5, *, model: str = "logistic_nonconvex", reg: float = 0.1):
+    """scikit-learn's bundled breast-cancer data (open dataset), standardised, split in order."""
+    from sklearn.datasets import load_breast_cancer
+
+    X, y = load_breast_cancer(return_X_y=True)
+    X = (X - X.mean(axis=0)) / X.std(axis=0)
+    y = np.where(y == 1, 1.0, -1.0)
+    parts = np.array_split(np.arange(len(y)), n_workers)
+    return problem_from_arrays(model, [X[p] for p in parts], [y[p] for p in parts], regularization=reg)
+
+
+def random_problem(*, model: str, sparse: bool, seed: int, sizes=(5, 9, 6, 8), dim: int = 7, reg: float = 0.1):
+    """Unequal worker sizes (padding is exercised), Gaussian or sparse rows."""
+    import scipy.sparse as sp
+
+    rng = np.random.default_rng(seed)
+    rows, targets = [], []
+    for s in sizes:
+        r = rng.standard_normal((s, dim))
+        if sparse:
+            r = sp.csr_matrix(r * (rng.random(r.shape) < 0.4))
+        rows.append(r)
+        if model == "logistic_nonconvex":
+            targets.append(np.where(rng.random(s) < 0.5, -1.0, 1.0))
+        else:
+            targets.append(rng.standard_normal(s))
+    return problem_from_arrays(model, rows, targets, regularization=reg), rows, targets
+
+
+@pytest.fixture(scope="session")
+def cancer():
+    return breast_cancer_problem()

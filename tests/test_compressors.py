@@ -1,0 +1,458 @@
+"""Conformance suite: every compressor passes the same checks (STYLE.md, "one conformance suite").
+
+Reference values are the published constants (THEORY.md 1.2), recomputed here
+independently of the module; each check names its source.
+
+Statistical checks: every assertion has a false-alarm rate of at most 1e-6
+(common practice, no source), with Bonferroni over coordinates where several
+are tested at once. Normal approximations are justified by >= 1e4 samples.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+
+import numpy as np
+import pytest
+from scipy.stats import norm
+
+from bittune._random import trajectory_keys
+from bittune.compressors import COMPRESSORS, Compressor, make_compressor, parse_spec
+from bittune.errors import InputError
+
+D, N, B = 40, 3, 2  # dimension, workers, trajectories of the small conformance blocks
+SETTINGS = [
+    "identity", "rand_k:1", "rand_k:7", f"rand_k:{D}", "top_k:1", "top_k:7",
+    "dither:1", "dither:4", "natural",
+]
+UNBIASED = [s for s in SETTINGS if not s.startswith("top_k")]
+RANDOMISED = ["rand_k:1", "rand_k:7", "dither:1", "dither:4", "natural"]
+
+FALSE_ALARM = 1e-6
+Z_ONE = float(norm.isf(FALSE_ALARM))  # one-sided z quantile
+
+
+def z_two(m: int) -> float:
+    """Two-sided z quantile, Bonferroni over m simultaneous tests."""
+    return float(norm.isf(FALSE_ALARM / (2 * m)))
+
+
+def published(label: str, d: int) -> dict:
+    """Constants of THEORY.md 1.2, written out here (not read from the module)."""
+    name, _, arg = label.partition(":")
+    b_ix = math.ceil(math.log2(d))
+    if name == "identity":
+        return dict(unbiased=True, omega=0.0, alpha=1.0, density=d, bits=32 * d)
+    if name == "natural":  # Horvath et al. 2019: second moment 9/8; 9 bits per float32
+        return dict(unbiased=True, omega=1 / 8, alpha=8 / 9, density=d, bits=9 * d)
+    p = int(arg)
+    if name == "rand_k":  # omega = d/K - 1 (restated in MARINA, Gorbunov et al. 2021)
+        omega = d / p - 1
+        return dict(unbiased=True, omega=omega, alpha=1 / (1 + omega), density=p, bits=32 * p)
+    if name == "top_k":  # alpha = K/d (Stich, Cordonnier, Jaggi 2018); data-dependent indices
+        return dict(unbiased=False, omega=math.inf, alpha=p / d, density=p, bits=p * (32 + b_ix))
+    # dither: Alistarh et al. 2017 (QSGD), Lemma 3.1 (i) and (iii); bit model THEORY.md 1.2
+    omega = min(d / p**2, math.sqrt(d) / p)
+    density = min(d, p * (p + math.sqrt(d)))
+    dense = d * (1 + math.ceil(math.log2(p + 1)))
+    bits = 33 + min(dense, density * (1 + b_ix + math.ceil(math.log2(p))))
+    return dict(unbiased=True, omega=omega, alpha=1 / (1 + omega), density=density, bits=bits)
+
+
+def dither_bits(nnz: np.ndarray, d: int, s: int) -> np.ndarray:
+    """THEORY.md 1.2: 32 (norm) + 1 (flag) + min(dense fixed width, sparse)."""
+    dense = d * (1 + math.ceil(math.log2(s + 1)))
+    return 33 + np.minimum(dense, nnz * (1 + math.ceil(math.log2(d)) + math.ceil(math.log2(s))))
+
+
+def block(seed: int, shape=(B, N, D)) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    return rng.standard_normal(shape) * rng.lognormal(0.0, 1.0, size=shape[:2] + (1,))
+
+
+KEYS = trajectory_keys([11, 12])
+
+
+# ----------------------------------------------------------------------------- contract
+
+
+def test_registry_names():
+    assert set(COMPRESSORS) == {"identity", "rand_k", "top_k", "dither", "natural"}
+    for name, cls in COMPRESSORS.items():
+        assert cls.name == name and issubclass(cls, Compressor)
+
+
+@pytest.mark.parametrize("label", SETTINGS)
+def test_attributes_match_published(label):
+    c = make_compressor(label, D)
+    want = published(label, D)
+    assert c.name == label.partition(":")[0] and c.dim == D
+    assert c.unbiased is want["unbiased"]
+    # rtol 1e-14: the same closed forms, evaluated in a different order
+    for field in ("omega", "alpha", "density"):
+        assert getattr(c, field) == pytest.approx(want[field], rel=1e-14), field
+    assert c.nominal_bits == pytest.approx(want["bits"], rel=1e-14)
+    assert c.label() == label
+    assert parse_spec(c.label()) == c.spec()
+    assert make_compressor(c.spec(), D).label() == label
+
+
+@pytest.mark.parametrize("label", SETTINGS)
+def test_shape_dtype_and_input_untouched(label):
+    c = make_compressor(label, D)
+    v = block(1)
+    before = v.copy()
+    out, bits = c.compress(v, KEYS, 3)
+    assert out.shape == (B, N, D) and out.dtype == np.float64
+    assert bits.shape == (B, N) and bits.dtype == np.float64
+    np.testing.assert_array_equal(v, before)
+    with pytest.raises(ValueError):
+        c.compress(v[:, :, :-1], KEYS, 3)
+
+
+@pytest.mark.parametrize("label", SETTINGS)
+def test_deterministic_given_keys_and_round(label):
+    c = make_compressor(label, D)
+    v = block(2)
+    out1, bits1 = c.compress(v, KEYS, 7)
+    out2, bits2 = c.compress(v, KEYS, 7)
+    np.testing.assert_array_equal(out1, out2)
+    np.testing.assert_array_equal(bits1, bits2)
+    if label in RANDOMISED:  # another round or another key draws other numbers
+        assert not np.array_equal(c.compress(v, KEYS, 8)[0], out1)
+        assert not np.array_equal(c.compress(v, KEYS[::-1], 7)[0], out1)
+
+
+@pytest.mark.parametrize("label", SETTINGS)
+def test_alone_equals_batch(label):
+    c = make_compressor(label, D)
+    v = block(3)
+    out, bits = c.compress(v, KEYS, 5)
+    alone, alone_bits = c.compress(v[1:2], KEYS[1:2], 5)
+    np.testing.assert_array_equal(alone[0], out[1])
+    np.testing.assert_array_equal(alone_bits[0], bits[1])
+
+
+@pytest.mark.parametrize("label", SETTINGS)
+def test_workers_independent_of_each_others_data(label):
+    """Zero, inf and nan in one message: no warning, other messages unchanged."""
+    c = make_compressor(label, D)
+    v = block(4)
+    ref, ref_bits = c.compress(v, KEYS, 2)
+    w = v.copy()
+    w[0, 0] = 0.0
+    w[0, 1, 5] = np.inf
+    w[1, 2, 7] = np.nan
+    out, bits = c.compress(w, KEYS, 2)
+    np.testing.assert_array_equal(out[0, 0], 0.0)  # zero in, zero out
+    np.testing.assert_array_equal(out[1, :2], ref[1, :2])
+    np.testing.assert_array_equal(bits[1, :2], ref_bits[1, :2])
+    if label.startswith("dither"):  # zero message: norm + flag only (THEORY.md 1.2)
+        assert bits[0, 0] == 33.0
+
+
+@pytest.mark.parametrize("label", SETTINGS)
+def test_scale_equivariance_without_overflow(label):
+    """Q(2^900 x) = 2^900 Q(x) exactly with the same random numbers (every definition
+    in THEORY.md 1.2 is positively homogeneous; powers of two scale floats exactly).
+    Catches a norm computed as sqrt(sum x^2), which overflows here."""
+    c = make_compressor(label, D)
+    v = block(5)
+    out, bits = c.compress(v, KEYS, 4)
+    big, big_bits = c.compress(v * 2.0**900, KEYS, 4)
+    assert np.all(np.isfinite(big))
+    np.testing.assert_array_equal(big, out * 2.0**900)
+    np.testing.assert_array_equal(big_bits, bits)
+
+
+# ----------------------------------------------------------------------------- bits and nnz
+
+
+@pytest.mark.parametrize("label", SETTINGS)
+def test_bits_match_formula(label):
+    c = make_compressor(label, D)
+    want = published(label, D)
+    for round_ in range(5):
+        out, bits = c.compress(block(10 + round_), KEYS, round_)
+        if label.startswith("dither"):
+            s = int(label.partition(":")[2])
+            expected = dither_bits(np.count_nonzero(out, axis=-1), D, s)
+        else:
+            expected = np.full((B, N), want["bits"])
+        np.testing.assert_array_equal(bits, expected)
+
+
+@pytest.mark.parametrize(
+    "d, s, x, nnz, bits",
+    [
+        # ||x|| = 4, s|x_j|/||x|| = 1 for all j: every level is 1, Q(x) = x, nnz = 16.
+        # dense 16 (1 + ceil log2 5) = 64 < sparse 16 (1 + 4 + 2) = 112 -> 32 + 1 + 64
+        (16, 4, np.ones(16), 16, 97),
+        # ||x|| = 5, levels 3 and 4 exactly; sparse 2 (1 + 4 + 3) = 16 < dense 10 (1 + 3) = 40
+        (10, 5, np.r_[3.0, -4.0, np.zeros(8)], 2, 49),
+        # s = 1: ceil(log2 1) = 0, sparse 1 (1 + 4 + 0) = 5 < dense 10 (1 + 1) = 20
+        (10, 1, np.r_[0.0, 0.0, -2.5, np.zeros(7)], 1, 38),
+        # zero vector: norm and flag only
+        (10, 5, np.zeros(10), 0, 33),
+    ],
+)
+def test_dither_bits_hand_computed(d, s, x, nnz, bits):
+    c = make_compressor({"name": "dither", "levels": s}, d)
+    v = np.broadcast_to(x, (B, N, d))
+    out, got = c.compress(v, KEYS, 1)
+    # the levels are hit exactly, so Q(x) = x up to one rounding per operation
+    np.testing.assert_allclose(out, v, rtol=1e-15, atol=0)
+    assert np.all(np.count_nonzero(out, axis=-1) == nnz)
+    np.testing.assert_array_equal(got, np.full((B, N), float(bits)))
+
+
+@pytest.mark.parametrize("label", SETTINGS)
+def test_nnz_within_density(label):
+    """Every message: rand_k / top_k have nnz = K (no zero in the input), dense ones
+    keep the support of x, dithering never adds a non-zero. The dither density is a
+    bound on the mean only: see test_dither_mean_nnz."""
+    c = make_compressor(label, D)
+    for round_ in range(10):
+        v = block(20 + round_)
+        nnz = np.count_nonzero(c.compress(v, KEYS, round_)[0], axis=-1)
+        if label.startswith(("rand_k", "top_k")):
+            assert np.all(nnz == published(label, D)["density"])
+        elif label.startswith("dither"):
+            assert np.all(nnz <= np.count_nonzero(v, axis=-1))
+        else:
+            np.testing.assert_array_equal(nnz, np.count_nonzero(v, axis=-1))
+            assert np.all(nnz <= c.density)
+
+
+# ----------------------------------------------------------------------------- Monte Carlo
+
+MC_KEYS, MC_WORKERS, MC_ROUNDS = 200, 10, 50  # 1e5 messages, 1e4 worker averages
+
+
+def mc_vector(kind: str) -> np.ndarray:
+    rng = np.random.default_rng(123)
+    if kind == "worst_natural":  # |x_j| = (4/3) 2^k: natural compression's worst case
+        return rng.choice([-1.0, 1.0], D) * (4 / 3) * 2.0 ** rng.integers(-8, 9, D)
+    x = rng.standard_normal(D)
+    x[0], x[1], x[2] = 0.0, 6.0, 2.0**-3  # a zero, a spike and an exact power of two
+    return x
+
+
+@functools.lru_cache(maxsize=None)
+def monte_carlo(label: str, kind: str = "gauss") -> dict:
+    """Statistics of Q(x) for one fixed x over (trajectory, worker, round) draws."""
+    c = make_compressor(label, D)
+    x = mc_vector(kind)
+    keys = trajectory_keys(np.arange(1000, 1000 + MC_KEYS))
+    v = np.broadcast_to(x, (MC_KEYS, MC_WORKERS, D))
+    total = np.zeros(D)
+    ratio, avg_ratio, nnz = [], [], []
+    for round_ in range(MC_ROUNDS):
+        q, _ = c.compress(v, keys, round_)
+        total += q.sum(axis=(0, 1))
+        ratio.append((np.sum((q - x) ** 2, axis=-1) / (x @ x)).ravel())
+        avg_ratio.append(np.sum((q.mean(axis=1) - x) ** 2, axis=-1) / (x @ x))
+        nnz.append(np.count_nonzero(q, axis=-1).ravel())
+    ratio, avg_ratio, nnz = (np.concatenate(a) for a in (ratio, avg_ratio, nnz))
+    count = MC_KEYS * MC_WORKERS * MC_ROUNDS
+
+    def stats(a):
+        return float(a.mean()), float(a.std(ddof=1) / math.sqrt(a.size))
+
+    return dict(x=x, count=count, mean=total / count, ratio=stats(ratio),
+                avg_ratio=stats(avg_ratio), nnz=stats(nnz))
+
+
+def exact_coordinate_variance(label: str, x: np.ndarray) -> np.ndarray:
+    """Var Q(x)_j: exact for identity, rand_k, dither; an upper bound for natural."""
+    name, _, arg = label.partition(":")
+    if name == "identity":
+        return np.zeros_like(x)
+    if name == "rand_k":  # (d/K) x_j with probability K/d, else 0
+        return x**2 * (D / int(arg) - 1)
+    if name == "dither":  # (||x||/s)^2 (u - l)(l + 1 - u), THEORY.md 1.2 derivation notes
+        s = int(arg)
+        u = s * np.abs(x) / np.linalg.norm(x)
+        low = np.floor(u)
+        return (np.linalg.norm(x) / s) ** 2 * (u - low) * (low + 1 - u)
+    return x**2 / 8  # natural: per coordinate E Q_j^2 <= (9/8) x_j^2 (Horvath et al. 2019)
+
+
+def exact_variance_ratio(label: str, x: np.ndarray) -> float:
+    return float(exact_coordinate_variance(label, x).sum() / (x @ x))
+
+
+@pytest.mark.parametrize("label", UNBIASED)
+def test_unbiased_mean(label):
+    """E Q(x) = x: z-test per coordinate with the known variance, Bonferroni over d."""
+    mc = monte_carlo(label)
+    x = mc["x"]
+    se = np.sqrt(exact_coordinate_variance(label, x) / mc["count"])
+    # atol: pairwise summation of 1e5 terms, error ~ log2(1e5) eps relative
+    atol = 1e-12 * np.abs(x).max()
+    assert np.all(np.abs(mc["mean"] - x) <= z_two(D) * se + atol)
+
+
+@pytest.mark.parametrize("label", UNBIASED)
+def test_variance_within_omega(label):
+    """E||Q(x) - x||^2 / ||x||^2 <= omega (published), and equal to the exact value where known."""
+    mc = monte_carlo(label)
+    mean, se = mc["ratio"]
+    want = published(label, D)["omega"]
+    assert mean <= want + Z_ONE * se + 1e-12
+    if not label.startswith("natural"):
+        exact = exact_variance_ratio(label, mc["x"])
+        # Rand-K: omega = d/K - 1 with equality for every x (THEORY.md 1.2)
+        if label.startswith("rand_k"):
+            assert exact == pytest.approx(want, rel=1e-12)
+        # dithering: sharper derived bound min(d/(4 s^2), sqrt(d)/s) (THEORY.md 1.2, DER)
+        if label.startswith("dither"):
+            s = int(label.partition(":")[2])
+            assert exact <= min(D / (4 * s**2), math.sqrt(D) / s)
+        assert abs(mean - exact) <= z_two(1) * se + 1e-12
+
+
+@pytest.mark.parametrize("label", UNBIASED)
+def test_workers_draw_independently(label):
+    """Independent Q_i in U(omega): E||mean_i Q_i(x) - x||^2 = (1/n) E||Q(x) - x||^2
+    (THEORY.md 1.1, A = omega/n). Shared draws across workers would give n times more."""
+    mc = monte_carlo(label)
+    mean, se = mc["avg_ratio"]
+    assert mean <= published(label, D)["omega"] / MC_WORKERS + Z_ONE * se + 1e-12
+    if not label.startswith("natural"):
+        exact = exact_variance_ratio(label, mc["x"]) / MC_WORKERS
+        assert abs(mean - exact) <= z_two(1) * se + 1e-12
+
+
+def test_natural_worst_case_attains_one_eighth():
+    """|x_j| = (4/3) 2^k: P(up) = 1/3, Var = 4^k (2/9) = x_j^2 / 8 (THEORY.md 1.2, DER)."""
+    mc = monte_carlo("natural", "worst_natural")
+    mean, se = mc["ratio"]
+    assert abs(mean - 1 / 8) <= z_two(1) * se
+
+
+@pytest.mark.parametrize("label", ["dither:1", "dither:4"])
+def test_dither_mean_nnz(label):
+    """E nnz = sum_j min(1, u_j) (a level >= 1 is never rounded to 0; below 1 it is
+    non-zero with probability u_j) and <= min(d, s(s + sqrt d)) (QSGD Lemma 3.1 (iii))."""
+    mc = monte_carlo(label)
+    mean, se = mc["nnz"]
+    s = int(label.partition(":")[2])
+    x = mc["x"]
+    exact = float(np.minimum(1.0, s * np.abs(x) / np.linalg.norm(x)).sum())
+    assert mean <= published(label, D)["density"] + Z_ONE * se
+    assert abs(mean - exact) <= z_two(1) * se
+
+
+# ----------------------------------------------------------------------------- Top-K, natural
+
+
+@pytest.mark.parametrize("k", [1, 7, D])
+def test_top_k_contraction_and_selection(k):
+    c = make_compressor(f"top_k:{k}", D)
+    rng = np.random.default_rng(7)
+    v = np.concatenate([rng.standard_normal((20, N, D)), rng.standard_cauchy((20, N, D))])
+    keys = trajectory_keys(np.arange(v.shape[0]))
+    out, _ = c.compress(v, keys, 0)
+    err = np.sum((out - v) ** 2, axis=-1)
+    # deterministic bound ||C(x) - x||^2 <= (1 - K/d)||x||^2; rtol 1e-12 for rounding of sums
+    assert np.all(err <= (1 - k / D) * np.sum(v**2, axis=-1) * (1 + 1e-12))
+    kept = out != 0
+    np.testing.assert_array_equal(out[kept], v[kept])  # values are copied, not scaled
+    np.testing.assert_array_equal(  # exactly the K largest magnitudes (numpy sort as reference)
+        np.sort(np.abs(out), axis=-1)[..., D - k :], np.sort(np.abs(v), axis=-1)[..., D - k :]
+    )
+
+
+def test_top_k_ties_keep_exactly_k_and_attain_the_bound():
+    c = make_compressor("top_k:7", D)
+    rng = np.random.default_rng(8)
+    v = rng.choice([-2.0, 2.0], size=(B, N, D))  # all magnitudes tie
+    out, _ = c.compress(v, KEYS, 0)
+    assert np.all(np.count_nonzero(out, axis=-1) == 7)
+    err = np.sum((out - v) ** 2, axis=-1)
+    np.testing.assert_allclose(err, (1 - 7 / D) * 4.0 * D, rtol=1e-15)  # equality case
+
+
+def test_natural_outputs_signed_powers_of_two():
+    c = make_compressor("natural", D)
+    rng = np.random.default_rng(9)
+    v = rng.standard_normal((B, N, D)) * 2.0 ** rng.integers(-60, 61, (B, N, D))
+    v[0, 0, :5] = 0.0
+    for round_ in range(20):
+        out, _ = c.compress(v, KEYS, round_)
+        np.testing.assert_array_equal(out == 0, v == 0)
+        np.testing.assert_array_equal(np.sign(out), np.sign(v))
+        mant, expo = np.frexp(out[v != 0])
+        assert np.all(np.abs(mant) == 0.5)  # a power of two
+        # 2^a <= |x| < 2^(a+1) and out in {2^a, 2^(a+1)}: frexp exponent grows by 0 or 1
+        assert np.all(np.isin(expo - np.frexp(v[v != 0])[1], [0, 1]))
+
+
+def test_natural_is_identity_on_powers_of_two():
+    c = make_compressor("natural", D)
+    rng = np.random.default_rng(10)
+    v = rng.choice([-1.0, 1.0], (B, N, D)) * 2.0 ** rng.integers(-1070, 1000, (B, N, D))
+    for round_ in range(20):
+        np.testing.assert_array_equal(c.compress(v, KEYS, round_)[0], v)
+
+
+# ----------------------------------------------------------------------------- parsing
+
+
+@pytest.mark.parametrize(
+    "spec, want",
+    [
+        ("rand_k:6", {"name": "rand_k", "k": 6}),
+        (" top_k : 3 ", {"name": "top_k", "k": 3}),
+        ({"name": "top_k", "k": 3}, {"name": "top_k", "k": 3}),
+        ({"name": "top_k", "k": np.int64(3)}, {"name": "top_k", "k": 3}),
+        ("dither:4", {"name": "dither", "levels": 4}),
+        ({"name": "dither", "levels": 2.0}, {"name": "dither", "levels": 2}),
+        ("natural", {"name": "natural"}),
+        ({"name": "identity"}, {"name": "identity"}),
+    ],
+)
+def test_parse_accepts(spec, want):
+    assert parse_spec(spec) == want
+    c = make_compressor(spec, D)
+    assert c.spec() == want and type(c.spec().get("k", 0)) is int
+
+
+@pytest.mark.parametrize(
+    "spec, message",
+    [
+        ("foo", "compressor: unknown compressor 'foo'"),
+        ({"name": "foo"}, "compressor.name: unknown compressor 'foo'"),
+        ({"k": 3}, "compressor.name: missing"),
+        ("rand_k", "compressor.k: missing"),
+        ({"name": "top_k"}, "compressor.k: missing"),
+        ("rand_k:0", f"compressor.k: must be an integer in [1, {D}], got 0"),
+        ("rand_k:41", f"compressor.k: must be an integer in [1, {D}], got 41"),
+        ("rand_k:abc", f"compressor.k: must be an integer in [1, {D}], got 'abc'"),
+        ({"name": "top_k", "k": 2.5}, "compressor.k: must be an integer in [1, 40], got 2.5"),
+        ({"name": "top_k", "k": True}, "compressor.k: must be an integer in [1, 40], got True"),
+        ("dither:0", "compressor.levels: must be an integer >= 1, got 0"),
+        ("natural:3", "compressor: natural takes no parameter"),
+        ({"name": "natural", "k": 3}, "compressor.k: unknown key for natural"),
+        (42, "compressor: must be text"),
+    ],
+)
+def test_make_compressor_rejects(spec, message):
+    with pytest.raises(InputError) as info:
+        make_compressor(spec, D)
+    assert message in str(info.value)
+
+
+def test_errors_use_the_given_key_and_are_collected():
+    with pytest.raises(InputError) as info:
+        make_compressor({"name": "rand_k", "k": 0, "extra": 1}, D, key="job.uplink")
+    assert info.value.problems == [
+        f"job.uplink.k: must be an integer in [1, {D}], got 0",
+        "job.uplink.extra: unknown key for rand_k (allowed: name, k)",
+    ]
+    with pytest.raises(InputError, match=r"^job\.uplink\.k: must be an integer >= 1, got 0$"):
+        parse_spec("rand_k:0", key="job.uplink")
+    with pytest.raises(ValueError, match="dim"):
+        make_compressor("natural", 0)

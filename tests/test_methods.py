@@ -1,0 +1,132 @@
+"""One suite that every method passes (STYLE.md: conformance suites)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from bittune.compressors import make_compressor
+from bittune.methods import METHODS
+from bittune.simulate import absolute_target, simulate
+from conftest import breast_cancer_problem, random_problem
+
+ALL = sorted(METHODS)
+
+
+def _run(problem, method, spec, *, step, seeds=(0,), rounds=200, target=0.0, **params):
+    return simulate(problem, method=method, compressor=make_compressor(spec, problem.dim), step_size=step,
+                    seeds=list(seeds), target=target, max_rounds=rounds, params=params)
+
+
+@pytest.mark.parametrize("method", ALL)
+def test_identity_compressor_reproduces_gd(cancer, method):
+    _, L = cancer.smoothness_bounds()
+    ref = _run(cancer, "gd", "identity", step=1 / L)[0]
+    got = _run(cancer, method, "identity", step=1 / L)[0]
+    # Identical arithmetic up to the order of a few additions (h + (g - h)):
+    # rounding of ~1e-16 per round over 200 rounds. The iterate agrees to 1e-12
+    # relative; ||grad f||^2 falls by 1e11 here, so its rounding is measured
+    # against its starting scale (cancellation makes small values noisier).
+    np.testing.assert_allclose(got.x, ref.x, rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(got.grad_norm_sq, ref.grad_norm_sq, rtol=1e-12, atol=1e-12 * ref.grad_norm_sq[0])
+
+
+def test_marina_with_sync_probability_one_equals_gd(cancer):
+    _, L = cancer.smoothness_bounds()
+    ref = _run(cancer, "gd", "identity", step=1 / L)[0]
+    got = _run(cancer, "marina", "rand_k:3", step=1 / L, sync_probability=1.0)[0]
+    np.testing.assert_allclose(got.grad_norm_sq, ref.grad_norm_sq, rtol=1e-12)
+    assert got.uplink_bits == ref.uplink_bits  # every round is a dense sync
+
+
+@pytest.mark.parametrize("model", ["logistic_nonconvex", "least_squares"])
+def test_gd_at_one_over_L_meets_the_descent_bound(model):
+    """Nesterov (2004), 1.2.3: with gamma = 1/L, min_k ||grad f(x_k)||^2 <= 2 Delta0 / (gamma K)."""
+    problem, _, _ = random_problem(model=model, sparse=False, seed=21, sizes=(30, 25, 40), dim=6)
+    _, L = problem.smoothness_bounds()
+    x0 = np.zeros(problem.dim)
+    delta0 = problem.full_loss(x0) - problem.loss_lower_bound()
+    run = _run(problem, "gd", "identity", step=1 / L, rounds=400)[0]
+    for K in (1, 10, 100, 400):
+        assert run.grad_norm_sq[:K].min() <= 2 * delta0 * L / K
+
+
+@pytest.mark.parametrize("method,spec,params", [
+    ("gd", "identity", {}),
+    ("dcgd", "rand_k:15", {}),
+    ("diana", "rand_k:6", {}),
+    ("marina", "rand_k:6", {}),
+    ("ef21", "top_k:6", {}),
+    ("diana", "dither:4", {}),
+    ("marina", "natural", {"sync_probability": 0.2}),
+])
+def test_each_method_reaches_the_target_on_breast_cancer(cancer, method, spec, params):
+    """scikit-learn's bundled breast-cancer data (open dataset), standardised, 5 workers."""
+    _, L = cancer.smoothness_bounds()
+    x0 = np.zeros(cancer.dim)
+    target = absolute_target(cancer, x0, grad_norm_sq=1e-3, relative=True)
+    runs = _run(cancer, method, spec, step=1 / L, seeds=range(3), rounds=20_000, target=target, **params)
+    assert all(r.status == "reached" for r in runs), [r.status for r in runs]
+    assert all(r.grad_norm_sq[-1] <= target for r in runs)
+
+
+@pytest.mark.parametrize("method,spec", [("dcgd", "rand_k:5"), ("diana", "dither:2"),
+                                         ("marina", "rand_k:5"), ("ef21", "rand_k:5"), ("gd", "identity")])
+def test_batch_equals_each_trajectory_alone(cancer, method, spec):
+    _, L = cancer.smoothness_bounds()
+    steps = np.array([0.5, 1.0, 2.0, 4.0]) / L
+    target = absolute_target(cancer, np.zeros(cancer.dim), grad_norm_sq=1e-4, relative=True)
+    batch = _run(cancer, method, spec, step=steps, seeds=[3, 4, 5, 6], rounds=300, target=target)
+    for j, seed in enumerate([3, 4, 5, 6]):
+        alone = _run(cancer, method, spec, step=steps[j], seeds=[seed], rounds=300, target=target)[0]
+        assert (alone.status, alone.rounds) == (batch[j].status, batch[j].rounds)
+        assert alone.uplink_bits == batch[j].uplink_bits
+        # Same random numbers by construction; BLAS blocks products of different
+        # batch sizes differently, so iterates agree to rounding (measured <= 2e-12).
+        np.testing.assert_allclose(alone.grad_norm_sq, batch[j].grad_norm_sq, rtol=1e-8)
+
+
+def test_marina_coin_is_shared_by_workers_and_bits_add_up(cancer):
+    d, n = cancer.dim, cancer.n_workers
+    run = _run(cancer, "marina", "rand_k:5", step=0.1, rounds=300, sync_probability=0.3)[0]
+    per_round = np.diff(run.uplink_curve)
+    # Every round is either a dense sync (32 d) or a Rand-K message (32 K) for all
+    # workers alike; a per-worker coin would give mixtures in between.
+    assert set(np.unique(per_round)) <= {32.0 * d, 32.0 * 5}
+    assert per_round[0] == 32.0 * d  # g^0 = grad f(x^0), dense
+    syncs = np.sum(per_round[1:] == 32.0 * d)
+    # Binomial(299, 0.3): mean 89.7, sd 7.9; 5 sd either side (false alarm < 1e-6).
+    assert abs(syncs - 89.7) < 5 * 7.9
+
+
+def test_diana_default_shift_rate_is_one_over_one_plus_omega():
+    from bittune.methods import make_method
+
+    comp = make_compressor("rand_k:4", 20)
+    m = make_method("diana", compressor=comp, n_workers=3, dim=20, batch=2)
+    # Mishchenko et al. (2019): alpha = 1/(omega + 1); Rand-K omega = d/K - 1 = 4.
+    np.testing.assert_allclose(m.p["shift_rate"], [0.2, 0.2])
+
+
+def test_divergence_is_detected_and_budget_reported(cancer):
+    _, L = cancer.smoothness_bounds()
+    runs = _run(cancer, "gd", "identity", step=np.array([100.0, 0.01]) / L, seeds=[0, 1], rounds=50)
+    statuses = {r.status for r in runs}
+    assert runs[1].status == "budget" and runs[1].rounds == 50
+    # Logistic gradients are bounded, so a huge step oscillates rather than
+    # overflowing: least squares is the model that truly diverges.
+    ls = breast_cancer_problem(model="least_squares", reg=0.0)
+    _, L2 = ls.smoothness_bounds()
+    div = _run(ls, "gd", "identity", step=3.0 / L2, rounds=5000)[0]
+    assert div.status == "diverged" and div.rounds < 5000
+    assert statuses <= {"budget", "diverged"}
+
+
+def test_bits_cap_stops_a_trajectory(cancer):
+    d = cancer.dim
+    run = _run(cancer, "gd", "identity", step=0.01, rounds=1000)[0]
+    capped = simulate(cancer, method="gd", compressor=make_compressor("identity", d), step_size=0.01, seeds=[0],
+                      target=0.0, max_rounds=1000, max_bits_per_worker=32.0 * d * 10)[0]
+    assert run.status == "budget"
+    assert capped.status == "bits_cap" and capped.rounds == 10
+    assert capped.uplink_bits == 32.0 * d * 10
