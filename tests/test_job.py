@@ -232,8 +232,10 @@ ERRORS = [
      "budget.max_bits_per_worker: must be a number > 0, got 0"),
     (dict(regularization=-0.5), "regularization: must be a number >= 0, got -0.5"),
     (dict(modle="least_squares"), "modle: unknown key (did you mean 'model'?)"),
+    (dict(probe={"safety": 0.5}), "probe.safety: must be a number >= 1, got 0.5"),
+    (dict(probe={"runs": 0}), "probe.runs: must be an integer >= 1, got 0"),
     (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, data, workers, target, "
-                  "budget, start)"),
+                  "budget, probe, start)"),
     (dict(data="nope.svm"), "data.path: file not found: {folder}/nope.svm"),
     (dict(data="."), "data.path: not a file: {folder}"),
     (dict(data={"path": "stations.svm", "format": "parquet"}),

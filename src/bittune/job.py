@@ -22,7 +22,7 @@ from bittune._yaml import REQUIRED, Param, check_mapping, parse_yaml, read_bytes
 from bittune.errors import InputError
 
 __all__ = [
-    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "Job",
+    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "Job",
     "load_job", "parse_job", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
 ]
 
@@ -65,6 +65,18 @@ class BudgetSpec:
 
 
 @dataclass(frozen=True)
+class ProbeSpec:
+    runs: int
+    run_rounds: int
+    points_per_run: int
+    power_iters: int
+    safety: float
+    gradient_tolerance: float
+    seed: int
+    lower_bound: float | None
+
+
+@dataclass(frozen=True)
 class StartSpec:
     kind: str  # "zeros" | "random" | "file"
     seed: int | None
@@ -82,6 +94,7 @@ class Job:
     target: TargetSpec
     budget: BudgetSpec
     start: StartSpec
+    probe: ProbeSpec
     raw: dict = field(repr=False)
     digest: str  # sha256 hex of the job file bytes
 
@@ -114,6 +127,16 @@ SECTIONS: dict[str, dict[str, Param]] = {
     "budget": {
         "max_rounds": Param("int", low=1, default=REQUIRED),
         "max_bits_per_worker": Param("real", low=0, closed="right"),
+    },
+    "probe": {
+        "runs": Param("int", low=1, default=3),
+        "run_rounds": Param("int", low=1, default=30),
+        "points_per_run": Param("int", low=1, default=4),
+        "power_iters": Param("int", low=1, default=30),
+        "safety": Param("real", low=1.0, default=1.0),
+        "gradient_tolerance": Param("real", low=0, closed="right", default=1e-5),
+        "seed": Param("int", low=0, default=0),
+        "lower_bound": Param("real"),  # a known lower bound of f; default: the model's
     },
     "start": {
         "seed": Param("int", low=0),
@@ -187,7 +210,8 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
     return Job(
         path=Path(source), data=data, model=top["model"], regularization=top["regularization"],
         workers=WorkersSpec(**values["workers"]), target=TargetSpec(**values["target"]),
-        budget=BudgetSpec(**values["budget"]), start=start, raw=deepcopy(mapping), digest=digest,
+        budget=BudgetSpec(**values["budget"]), start=start, probe=ProbeSpec(**values["probe"]),
+        raw=deepcopy(mapping), digest=digest,
     )
 
 

@@ -1,0 +1,71 @@
+"""The problem constants that the probe measures and the theory rules consume."""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+__all__ = ["Constants"]
+
+
+@dataclass
+class Constants:
+    """Smoothness and scale constants of f = (1/n) sum_i f_i (THEORY.md 3.1).
+
+    Every smoothness value already includes ``safety`` (a factor >= 1 applied to
+    the estimates). ``bound_*`` hold closed-form upper bounds where the model
+    offers them (None otherwise), for comparison only.
+    """
+
+    n_workers: int
+    dim: int
+    L: float  # L_- : smoothness of f
+    L_workers: np.ndarray  # (n,) L_i
+    L_plus: float  # mean-squared constant L_+
+    L_pm: float  # Hessian variance L_pm
+    delta0: float  # f(x0) - lower bound of f
+    grad_sq0: float  # ||grad f(x0)||^2
+    local_grad_sq0: float  # (1/n) sum_i ||grad f_i(x0)||^2
+    heterogeneity0: float  # (1/n) sum_i ||grad f_i(x0) - grad f(x0)||^2
+    safety: float = 1.0
+    bound_L: float | None = None
+    bound_L_workers: np.ndarray | None = None
+    extra: dict = field(default_factory=dict)  # e.g. measured contraction of Top-K
+
+    @property
+    def L_am(self) -> float:
+        return float(np.mean(self.L_workers))
+
+    @property
+    def L_qm(self) -> float:
+        return float(np.sqrt(np.mean(np.square(self.L_workers))))
+
+    @property
+    def L_max(self) -> float:
+        return float(np.max(self.L_workers))
+
+    @property
+    def delta_star_bound(self) -> float:
+        """Upper bound on Delta* = f_inf - (1/n) sum_i f_i^inf: f_inf <= f(x0) and f_i >= lower bound."""
+        return float(self.delta0)
+
+    def to_dict(self) -> dict:
+        """Plain types only (for YAML/JSON): arrays become lists."""
+        out = {}
+        for key, value in asdict(self).items():
+            if isinstance(value, np.ndarray):
+                value = [float(v) for v in value]
+            elif isinstance(value, (np.floating, np.integer)):
+                value = value.item()
+            out[key] = value
+        out.update(L_am=self.L_am, L_qm=self.L_qm, L_max=self.L_max)
+        return out
+
+    @classmethod
+    def from_dict(cls, doc: dict) -> "Constants":
+        doc = {k: v for k, v in doc.items() if k not in ("L_am", "L_qm", "L_max")}
+        for key in ("L_workers", "bound_L_workers"):
+            if doc.get(key) is not None:
+                doc[key] = np.asarray(doc[key], dtype=np.float64)
+        return cls(**doc)
