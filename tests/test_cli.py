@@ -98,3 +98,66 @@ def test_random_start_from_the_job(demo, tmp_path, capsys):
     ws = open_job(load_job(job))
     # Reference: numpy's seeded Generator draws the same start.
     np.testing.assert_array_equal(ws.x0, np.random.default_rng(4).normal(0.0, 0.1, ws.problem.dim))
+
+
+def test_probe_json_has_the_documented_keys_and_matches_the_bounds(demo, capsys, tmp_path):
+    out_file = tmp_path / "constants.yaml"
+    code = main(["probe", str(demo / "job.yaml"), "--json", "-o", str(out_file)])
+    doc = json.loads(capsys.readouterr().out)
+    assert code == 0
+    s = doc["smoothness"]
+    for key in ("L", "L_workers", "L_am", "L_qm", "L_max", "L_plus", "L_pm"):
+        assert key in s
+    assert doc["gradient_check"]["passed"] is True
+    assert doc["gradient_check"]["max_rel_error"] < 1e-5
+    # THEORY.md 3.2: for logistic + non-convex regulariser the closed form is an
+    # upper bound, attained at x = 0 (the demo's start): estimates within 1%.
+    b = doc["closed_form_bounds"]
+    assert s["L"] <= b["L"] * 1.01 and s["L"] >= b["L"] * 0.99
+    np.testing.assert_allclose(s["L_workers"], b["L_workers"], rtol=1e-2)
+    # Chain L_- <= L_+ <= L_qm (THEORY.md 3.1), with 1e-6 slack for estimation rounding.
+    assert s["L"] <= s["L_plus"] * (1 + 1e-6) and s["L_plus"] <= s["L_qm"] * (1 + 1e-6)
+    import yaml
+
+    saved = yaml.safe_load(out_file.read_text())
+    assert saved["bittune_constants"] == 1 and saved["smoothness"]["L"] == s["L"]
+
+
+def test_probe_human_output_shows_estimate_beside_bound(demo, capsys):
+    assert main(["probe", str(demo / "job.yaml")]) == 0
+    out = capsys.readouterr().out
+    assert "gradient check" in out and "passed" in out and "bound" in out and "oracle calls" in out
+
+
+def test_probe_exits_3_on_a_wrong_gradient(demo, capsys, monkeypatch):
+    from bittune.problems.logistic import LogisticNonconvex
+
+    original = LogisticNonconvex._reg_grad
+    # A deliberately wrong gradient: the regulariser's part doubled.
+    monkeypatch.setattr(LogisticNonconvex, "_reg_grad", lambda self, Xw: 2.0 * original(self, Xw))
+    code = main(["probe", str(demo / "job.yaml"), "--json"])
+    captured = capsys.readouterr()
+    assert code == 3
+    assert captured.out == ""
+    assert "worker" in captured.err
+
+
+def test_theory_json_rows(demo, capsys):
+    code = main(["theory", str(demo / "job.yaml"), "--json", "--method", "marina", "--method", "ef21",
+                 "--compressor", "rand_k:4", "--compressor", "top_k:4"])
+    doc = json.loads(capsys.readouterr().out)
+    assert code == 0
+    pairs = {(r["method"], r["compressor"]) for r in doc["rows"]}
+    # top_k is biased: MARINA needs an unbiased compressor, EF21 takes both.
+    assert pairs == {("marina", "rand_k:4"), ("ef21", "rand_k:4"), ("ef21", "top_k:4")}
+    for r in doc["rows"]:
+        for key in ("step_size", "sync_probability", "predicted_rounds", "predicted_bits_per_worker"):
+            assert key in r
+        if r["method"] == "marina":
+            # MARINA's p = zeta/d (Gorbunov et al. 2021, Corollary 2.1, from memory): 4/38.
+            assert abs(r["sync_probability"] - 4 / 38) < 1e-12
+
+
+def test_theory_rejects_a_bad_compressor_spec(demo, capsys):
+    assert main(["theory", str(demo / "job.yaml"), "--compressor", "rand_k:0"]) == 2
+    assert "--compressor" in capsys.readouterr().err

@@ -11,8 +11,10 @@ import json
 import sys
 import traceback
 
+import numpy as np
+
 from . import __version__
-from .errors import EXIT, BittuneError
+from .errors import EXIT, BittuneError, InputError
 
 __all__ = ["main", "build_parser"]
 
@@ -47,6 +49,118 @@ def _cmd_replay(args: argparse.Namespace) -> int:
     return EXIT["ok"] if doc["all_reached"] else EXIT["no_candidate"]
 
 
+def _cmd_probe(args: argparse.Namespace) -> int:
+    from ._yaml import atomic_write_text, dump_yaml
+    from .job import load_job
+    from .probe import probe_workspace
+    from .workspace import open_job
+
+    ws = open_job(load_job(args.job))
+    constants, report = probe_workspace(ws)
+    doc = _probe_doc(ws, constants, report)
+    if args.output:
+        atomic_write_text(args.output, dump_yaml({"bittune_constants": 1, **doc}))
+    if args.json:
+        _emit_json(doc)
+    else:
+        _print_probe(ws, constants, report)
+        if args.output:
+            print(f"constants written to {args.output}")
+    return EXIT["ok"]
+
+
+def _probe_doc(ws, constants, report) -> dict:
+    c = constants.to_dict()
+    smooth = {k: c[k] for k in ("L", "L_workers", "L_am", "L_qm", "L_max", "L_plus", "L_pm")}
+    bounds = None
+    if constants.bound_L is not None:
+        bw = np.asarray(constants.bound_L_workers)
+        bounds = {"L": float(constants.bound_L), "L_workers": [float(v) for v in bw],
+                  "L_am": float(bw.mean()), "L_qm": float(np.sqrt(np.mean(bw ** 2))), "L_max": float(bw.max())}
+    gc = report.gradient_check
+    return {
+        "job": str(ws.job.path),
+        "job_digest": ws.job.digest,
+        "problem": ws.summary(),
+        "smoothness": smooth,
+        "closed_form_bounds": bounds,
+        "safety": constants.safety,
+        "delta0": constants.delta0,
+        "grad_norm_sq0": constants.grad_sq0,
+        "local_grad_norm_sq0": constants.local_grad_sq0,
+        "heterogeneity0": constants.heterogeneity0,
+        "gradient_check": {"max_rel_error": gc.max_rel_error, "passed": gc.passed,
+                           "tolerance": gc.threshold, "worst_worker": int(gc.worst[0])},
+        "cost": {"oracle_calls": report.oracle_calls, "seconds": report.seconds,
+                 "probe_points": int(len(report.points)), "raised_to_secant": report.raised},
+        "constants": c,
+    }
+
+
+def _print_probe(ws, constants, report) -> None:
+    gc = report.gradient_check
+    print(f"gradient check: largest relative error {gc.max_rel_error:.2e} over {gc.points} points x "
+          f"{gc.directions} directions x {ws.problem.n_workers} workers (tolerance {gc.threshold:g}): "
+          f"{'passed' if gc.passed else 'FAILED'}")
+    has_bound = constants.bound_L is not None
+    bw = np.asarray(constants.bound_L_workers) if has_bound else None
+    print(f"\nsmoothness (local estimates x safety {constants.safety:g}" +
+          ("; closed-form bounds beside)" if has_bound else ")"))
+    rows = [("L (of f)", constants.L, constants.bound_L if has_bound else None),
+            ("L_am", constants.L_am, float(bw.mean()) if has_bound else None),
+            ("L_qm", constants.L_qm, float(np.sqrt(np.mean(bw ** 2))) if has_bound else None),
+            ("L_max", constants.L_max, float(bw.max()) if has_bound else None),
+            ("L_plus", constants.L_plus, None), ("L_pm", constants.L_pm, None)]
+    print(f"  {'constant':<10} {'estimate':>10} {'bound':>10} {'ratio':>7}")
+    for name, est, bound in rows:
+        tail = f"{bound:>10.4g} {est / bound:>7.2f}" if bound else f"{'':>10} {'':>7}"
+        print(f"  {name:<10} {est:>10.4g} {tail}")
+    print(f"\n  {'worker':<10} {'L_i':>10} {'bound':>10} {'samples':>8}")
+    for i, li in enumerate(constants.L_workers):
+        b = f"{bw[i]:>10.4g}" if has_bound else f"{'':>10}"
+        print(f"  {i:<10} {li:>10.4g} {b} {int(ws.problem.worker_sizes[i]):>8}")
+    print(f"\nDelta0 = f(x0) - lower bound = {constants.delta0:.4g}; ||grad f(x0)||^2 = {constants.grad_sq0:.4g}; "
+          f"heterogeneity (1/n) sum ||grad f_i - grad f||^2 = {constants.heterogeneity0:.4g}")
+    print(f"probe cost: {report.oracle_calls} oracle calls on {len(report.points)} probe points, "
+          f"{report.seconds:.2f} s; {report.raised} estimates raised to a secant ratio")
+
+
+def _cmd_theory(args: argparse.Namespace) -> int:
+    from .compressors import make_compressor
+    from .job import load_job
+    from .probe import probe_workspace
+    from .theory import theory_table
+    from .workspace import open_job
+
+    ws = open_job(load_job(args.job))
+    d = ws.problem.dim
+    methods = tuple(args.method) if args.method else ("gd", "dcgd", "diana", "marina", "ef21")
+    compressors = None
+    if args.compressor:
+        compressors = [make_compressor(spec, d, key="--compressor").label() for spec in args.compressor]
+    constants, report = probe_workspace(ws)
+    grads, _ = ws.problem.local_grads(report.points)
+    rows = theory_table(constants, target=ws.target, methods=methods, compressors=compressors,
+                        contraction_vectors=grads)
+    if not rows:
+        raise InputError("--compressor: no compressor given fits the methods asked for "
+                         "(gd takes identity; dcgd, diana, marina take unbiased compressors)")
+    if args.json:
+        _emit_json({"job": str(ws.job.path), "problem": ws.summary(), "target_grad_norm_sq": ws.target,
+                    "rows": [r.to_dict() for r in rows]})
+        return EXIT["ok"]
+    print(f"theory settings for {ws.problem.n_workers} workers, d = {d}, target ||grad f||^2 <= {ws.target:.3g} "
+          f"(L = {constants.L:.4g}, L_qm = {constants.L_qm:.4g}, Delta0 = {constants.delta0:.4g})")
+    print(f"{'method':<7} {'compressor':<11} {'step':>10} {'sync p':>8} {'shift':>7} {'rounds':>16} "
+          f"{'bits/worker':>14}  source")
+    for r in rows:
+        p = f"{r.sync_probability:>8.3g}" if r.sync_probability is not None else f"{'':>8}"
+        a = f"{r.shift_rate:>7.3g}" if r.shift_rate is not None else f"{'':>7}"
+        print(f"{r.method:<7} {r.compressor:<11} {r.step_size:>10.4g} {p} {a} {r.predicted_rounds:>16,} "
+              f"{r.predicted_bits_per_worker:>14.4g}  {r.source}")
+    return EXIT["ok"]
+
+
 def _params(spec: dict) -> str:
     rest = {k: v for k, v in spec.items() if k != "name"}
     return ", ".join(f"{k}={v}" for k, v in rest.items())
@@ -70,6 +184,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=_nonneg_int, default=0, help="first seed (default 0)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.set_defaults(func=_cmd_replay)
+
+    p = sub.add_parser("probe", help="gradient check and smoothness constants of a job's problem")
+    p.add_argument("job", help="job file (YAML)")
+    p.add_argument("-o", "--output", help="also write the constants to this YAML file")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.set_defaults(func=_cmd_probe)
+
+    p = sub.add_parser("theory", help="theory-safe settings and predicted bits for every method x compressor")
+    p.add_argument("job", help="job file (YAML)")
+    p.add_argument("--method", action="append", choices=["gd", "dcgd", "diana", "marina", "ef21"],
+                   help="only this method (repeatable)")
+    p.add_argument("--compressor", action="append", metavar="SPEC",
+                   help="only this compressor: identity, rand_k:K, top_k:K, dither:S, natural (repeatable)")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.set_defaults(func=_cmd_theory)
     return ap
 
 

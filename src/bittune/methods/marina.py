@@ -24,7 +24,7 @@ class MARINA(Method):
     def direction(self, grads, keys, round_):
         if "g" not in self.state:
             self.state["g"] = grads.mean(axis=1)
-            self.state["prev"] = grads.copy()
+            self.state["prev"] = grads  # the engine hands a fresh array every round
             return self.state["g"].copy(), self._dense(grads)
         sync = uniform(keys, round_, STREAM["coin"], (1,))[:, 0] < self.p["sync_probability"]
         q, bits = self.compressor.compress(grads - self.state["prev"], keys, round_)
@@ -32,5 +32,5 @@ class MARINA(Method):
         g[sync] = grads[sync].mean(axis=1)
         bits[sync] = self._dense(grads)[sync]
         self.state["g"] = g
-        self.state["prev"] = grads.copy()
+        self.state["prev"] = grads
         return g.copy(), bits

@@ -21,10 +21,16 @@ class Problem(ABC):
 
     #: Name used in job files.
     name: str = ""
+    #: Sign folded into the per-worker scale 1/m_i of the backward pass, so that
+    #: ``_residual_weights`` can skip a negation pass.
+    _weight_sign: float = 1.0
 
     def __init__(self, shards: Shards, *, regularization: float):
         self.shards = shards
         self.regularization = float(regularization)
+        #: Optional constant (n, d) subtracted from every gradient (a data term
+        #: that does not depend on x, precomputed once).
+        self._grad_shift: np.ndarray | None = None
 
     @property
     def n_workers(self) -> int:
@@ -54,7 +60,9 @@ class Problem(ABC):
                 loss[:, blk.lo : blk.hi] = self._data_loss(z, blk)
             out = grads[:, blk.lo : blk.hi]
             blk.backward(self._residual_weights(z, blk), out)
-            out *= (1.0 / blk.sizes)[None, :, None]
+            out *= (self._weight_sign / blk.sizes)[None, :, None]
+            if self._grad_shift is not None:
+                out -= self._grad_shift[blk.lo : blk.hi]
 
         self.shards.run(work)
         Xw = X if X.ndim == 3 else X[:, None, :]

@@ -2,7 +2,8 @@
 
 f_i(x) = (1/m_i) sum_j log(1 + exp(-b_j a_j.x)) + lam sum_k x_k^2/(1 + x_k^2).
 The labels are folded into the rows once (a~_j = b_j a_j), so a pass needs only
-the signed margins u_j = a~_j.x: loss log(1 + e^{-u}), weight -1/(1 + e^{u}).
+the signed margins u_j = a~_j.x: loss log(1 + e^{-u}), weight -1/(1 + e^{u})
+(the sign is applied to the small (B, n, d) result, not to every row).
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ __all__ = ["LogisticNonconvex"]
 
 class LogisticNonconvex(Problem):
     name = "logistic_nonconvex"
+    _weight_sign = -1.0
 
     def _data_loss(self, z, blk):
         per_row = np.logaddexp(0.0, -z)
@@ -29,7 +31,6 @@ class LogisticNonconvex(Problem):
             np.exp(z, out=z)
         z += 1.0
         np.reciprocal(z, out=z)
-        np.negative(z, out=z)
         return z
 
     def _reg_value(self, Xw: np.ndarray) -> np.ndarray:

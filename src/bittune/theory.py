@@ -1,0 +1,310 @@
+"""Theory-safe settings and predicted cost to a target, per method and compressor.
+
+Each rule turns the measured :class:`~bittune.constants.Constants` and one
+compressor into a step size (plus sync probability or shift rate), the rounds
+K that its published bound needs to reach E||grad f(x_hat)||^2 <= target, and
+the uplink bits per worker for those K rounds (THEORY.md 2.10). ``target`` is
+the absolute target on ||grad f||^2 (THEORY.md writes it eps^2).
+
+A new method is one file in ``methods/`` plus its rule in :data:`RULES`.
+"""
+
+from __future__ import annotations
+
+import inspect
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from ._random import trajectory_keys
+from .compressors import Compressor, make_compressor
+from .constants import Constants
+from .methods import dense_bits
+
+__all__ = [
+    "TheoryPoint", "RULES", "theory_point", "theory_table", "measured_contraction",
+    "default_compressor_specs", "gd_rule", "dcgd_rule", "diana_rule", "marina_rule", "ef21_rule",
+]
+
+
+@dataclass(frozen=True)
+class TheoryPoint:
+    """One theory setting: step size, method parameters, predicted rounds and bits."""
+
+    method: str
+    compressor: str  # label, e.g. "rand_k:6"
+    step_size: float
+    sync_probability: float | None
+    shift_rate: float | None
+    predicted_rounds: int
+    predicted_bits_per_worker: float
+    source: str  # short citation of the rule
+    note: str = ""
+
+    def method_params(self) -> dict[str, float]:
+        """The method parameters in the form :func:`bittune.simulate.simulate` takes."""
+        out = {"sync_probability": self.sync_probability, "shift_rate": self.shift_rate}
+        return {k: v for k, v in out.items() if v is not None}
+
+    def to_dict(self) -> dict:
+        """Plain types for JSON/YAML."""
+        return {
+            "method": self.method,
+            "compressor": self.compressor,
+            "step_size": float(self.step_size),
+            "sync_probability": None if self.sync_probability is None else float(self.sync_probability),
+            "shift_rate": None if self.shift_rate is None else float(self.shift_rate),
+            "predicted_rounds": int(self.predicted_rounds),
+            "predicted_bits_per_worker": float(self.predicted_bits_per_worker),
+            "source": self.source,
+        }
+
+
+def _rounds(numerator: float, target: float) -> int:
+    """K = ceil(numerator / target), at least 1 (THEORY.md 2, "Common facts")."""
+    value = numerator / target
+    if not math.isfinite(value):
+        raise ValueError(f"predicted rounds are not finite ({numerator!r} / target {target!r})")
+    return max(1, math.ceil(value))
+
+
+def _point(method, comp, gamma, rounds, bits, source, *, sync=None, shift=None, note=""):
+    return TheoryPoint(method, comp.label(), float(gamma), sync, shift, int(rounds), float(bits),
+                       source, note)
+
+
+def gd_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
+    """GD: gamma = 1/L, K = ceil(2 L Delta0 / target), 32 d bits per round.
+
+    Nesterov, "Introductory Lectures on Convex Optimization", 2004, section 1.2.3
+    (from memory): min_k ||grad f(x^k)||^2 <= 2 Delta0 / (gamma K) for gamma <= 1/L.
+    """
+    c = constants
+    rounds = _rounds(2.0 * c.L * c.delta0, target)
+    return _point("gd", compressor, 1.0 / c.L, rounds, rounds * dense_bits(c.dim),
+                  "Nesterov 2004, sec. 1.2.3 (from memory)")
+
+
+def dcgd_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
+    """DCGD, no extra assumption (THEORY.md 2.2 Version A).
+
+    Khaled & Richtarik, "Better Theory for SGD in the Nonconvex World", 2020,
+    Theorem 2 / Corollary 1 (numbers from memory): with the ABC constants
+    A = omega L_max/n, B = 1, C = 2 omega L_max Delta*/n, the rounds
+    K >= (12 Delta0 L/eps) max{B, 12 Delta0 A/eps, 2C/eps} and
+    gamma = min{1/(L B), 1/sqrt(L A K), eps/(2 L C)} give min_k E||grad f||^2 <= eps.
+    K comes first (gamma depends on it). omega = 0 is GD: the GD rule applies.
+    """
+    c, eps, omega = constants, target, compressor.omega
+    if omega == 0.0:
+        p = gd_rule(compressor, constants, target=target)
+        return TheoryPoint("dcgd", p.compressor, p.step_size, None, None, p.predicted_rounds,
+                           p.predicted_bits_per_worker, p.source, "omega = 0: DCGD is GD")
+    A = omega * c.L_max / c.n_workers
+    B = 1.0
+    C = 2.0 * omega * c.L_max * c.delta_star_bound / c.n_workers
+    rounds = _rounds(12.0 * c.delta0 * c.L * max(B, 12.0 * c.delta0 * A / eps, 2.0 * C / eps), eps)
+    steps = [1.0 / (c.L * B)]
+    if A > 0:
+        steps.append(1.0 / math.sqrt(c.L * A * rounds))
+    if C > 0:
+        steps.append(eps / (2.0 * c.L * C))
+    return _point("dcgd", compressor, min(steps), rounds, rounds * compressor.nominal_bits,
+                  "Khaled & Richtarik 2020, Thm 2 / Cor. 1 (from memory)")
+
+
+def diana_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
+    """DIANA with our derived safe step (THEORY.md 2.3).
+
+    Method: Mishchenko, Gorbunov, Takac, Richtarik, "Distributed Learning with
+    Compressed Gradient Differences", 2019. Rule derived in THEORY.md 2.3
+    (Lyapunov function f - f_inf + c H), consistent with the rate quoted by
+    MARINA (Gorbunov et al., 2021; from memory): alpha = 1/(1+omega),
+    gamma = min{1/(2L), sqrt(n)/(sqrt(12 omega)(1+omega) L_QM)}. Shifts start at
+    the local gradients (one dense message, H^0 = 0), so K = ceil(2 Delta0/(gamma eps)).
+    """
+    c, omega = constants, compressor.omega
+    gamma = 1.0 / (2.0 * c.L)
+    if omega > 0:
+        gamma = min(gamma, math.sqrt(c.n_workers) / (math.sqrt(12.0 * omega) * (1.0 + omega) * c.L_qm))
+    rounds = _rounds(2.0 * c.delta0 / gamma, target)
+    bits = dense_bits(c.dim) + rounds * compressor.nominal_bits
+    return _point("diana", compressor, gamma, rounds, bits,
+                  "derived (THEORY 2.3) for DIANA, Mishchenko et al. 2019", shift=1.0 / (1.0 + omega))
+
+
+def marina_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
+    """MARINA, refined form (THEORY.md 2.4).
+
+    Gorbunov, Burlachenko, Li, Richtarik, "MARINA: Faster Non-Convex Distributed
+    Learning with Compression", ICML 2021, Theorem 2.1 and Corollary 2.1 (from
+    memory), in the refined form of Szlendak, Tyurin, Richtarik, ICLR 2022 (from
+    memory): p = zeta/d, gamma = 1/(L_- + L_+ sqrt((1-p) omega/(p n))),
+    E||grad f(x_hat)||^2 <= 2 Delta0/(gamma K). Bits: 32 d + K (p 32 d + (1-p) bits(Q)).
+    """
+    c, omega = constants, compressor.omega
+    p = min(1.0, compressor.density / compressor.dim)  # density >= 1, so p > 0
+    gamma = 1.0 / (c.L + c.L_plus * math.sqrt((1.0 - p) * omega / (p * c.n_workers)))
+    rounds = _rounds(2.0 * c.delta0 / gamma, target)
+    per_round = p * dense_bits(c.dim) + (1.0 - p) * compressor.nominal_bits
+    return _point("marina", compressor, gamma, rounds, dense_bits(c.dim) + rounds * per_round,
+                  "Gorbunov et al. 2021, Thm 2.1 refined (from memory)", sync=p)
+
+
+def ef21_rule(compressor: Compressor, constants: Constants, *, target: float,
+              alpha: float | None = None) -> TheoryPoint:
+    """EF21 (THEORY.md 2.9).
+
+    Richtarik, Sokolov, Fatkhullin, "EF21: A New, Simpler, Theoretically Better,
+    and Practically Faster Error Feedback", NeurIPS 2021, Theorem 1 (number from
+    memory): C in B(alpha), theta = 1 - sqrt(1-alpha), beta = (1-alpha)/theta,
+    gamma = 1/(L + L_QM sqrt(beta/theta)); with G^0 = 0 (dense start)
+    E||grad f(x_hat)||^2 <= 2 Delta0/(gamma K). An unbiased Q is used as Q/(1+omega),
+    alpha = 1/(1+omega). ``alpha`` overrides the compressor's worst case (e.g. the
+    measured contraction of Top-K, :func:`measured_contraction`).
+    """
+    c = constants
+    a = compressor.alpha if alpha is None else float(alpha)
+    if not 0.0 < a <= 1.0:
+        raise ValueError(f"alpha must be in (0, 1], got {alpha!r}")
+    # theta = 1 - sqrt(1-a) written without cancellation; sqrt(beta/theta) = sqrt(1-a)/theta.
+    theta = a / (1.0 + math.sqrt(1.0 - a))
+    gamma = 1.0 / (c.L + c.L_qm * math.sqrt(1.0 - a) / theta)
+    rounds = _rounds(2.0 * c.delta0 / gamma, target)
+    note = "" if alpha is None else f"alpha measured {a:.4g} (worst case {compressor.alpha:.4g})"
+    return _point("ef21", compressor, gamma, rounds, dense_bits(c.dim) + rounds * compressor.nominal_bits,
+                  "Richtarik et al. 2021, Thm 1 (from memory)", note=note)
+
+
+#: One rule per method name (the keys of :data:`bittune.methods.METHODS`).
+RULES: dict[str, Callable[..., TheoryPoint]] = {
+    "gd": gd_rule, "dcgd": dcgd_rule, "diana": diana_rule, "marina": marina_rule, "ef21": ef21_rule,
+}
+
+
+def _check_constants(c: Constants) -> None:
+    problems = []
+    for key in ("L", "L_plus"):
+        value = float(getattr(c, key))
+        if not (math.isfinite(value) and value > 0):
+            problems.append(f"constants.{key} must be a finite number > 0, got {value!r}")
+    workers = np.asarray(c.L_workers, dtype=np.float64)
+    if workers.shape != (c.n_workers,) or not np.all(np.isfinite(workers) & (workers > 0)):
+        problems.append(f"constants.L_workers must be {c.n_workers} finite numbers > 0, got {workers!r}")
+    if not (math.isfinite(c.delta0) and c.delta0 >= 0):
+        problems.append(f"constants.delta0 must be a finite number >= 0, got {c.delta0!r}")
+    if problems:
+        raise ValueError("; ".join(problems))
+
+
+def _fits(method: str, comp: Compressor) -> bool:
+    """GD sends dense gradients; DCGD, DIANA and MARINA need an unbiased Q; EF21 takes any."""
+    if method == "gd":
+        return comp.name == "identity"
+    return comp.unbiased or method == "ef21"
+
+
+def theory_point(method: str, compressor: Compressor | str | Mapping, constants: Constants, *,
+                 target: float, contraction: float | None = None) -> TheoryPoint:
+    """The theory setting of ``method`` with ``compressor`` (object or spec like "rand_k:6").
+
+    ``target`` is the absolute target on ||grad f||^2; ``contraction`` overrides
+    the compressor's alpha for rules that take one (EF21).
+    """
+    if method not in RULES:
+        raise ValueError(f"method must be one of {', '.join(RULES)}, got {method!r}")
+    comp = compressor if isinstance(compressor, Compressor) else make_compressor(compressor, constants.dim)
+    if comp.dim != constants.dim:
+        raise ValueError(f"compressor {comp.label()} has dim {comp.dim}, constants.dim is {constants.dim}")
+    if not _fits(method, comp):
+        need = "identity" if method == "gd" else "an unbiased compressor"
+        raise ValueError(f"{method} needs {need}, got {comp.label()}")
+    target = float(target)
+    if not (math.isfinite(target) and target > 0):
+        raise ValueError(f"target must be a finite number > 0, got {target!r}")
+    _check_constants(constants)
+    rule = RULES[method]
+    kwargs = {}
+    if contraction is not None:
+        if "alpha" not in inspect.signature(rule).parameters:
+            raise ValueError(f"contraction applies to ef21 only, not to {method}")
+        kwargs["alpha"] = contraction
+    return rule(comp, constants, target=target, **kwargs)
+
+
+def default_compressor_specs(dim: int) -> dict[str, list[str]]:
+    """Per method, a sensible set of compressors for dimension ``dim``.
+
+    K covers 1%, 5%, 10% and 25% of d (common practice, no source); identity
+    only for GD (with it, the other methods reduce to GD).
+    """
+    ks = sorted({max(1, round(dim * f)) for f in (0.01, 0.05, 0.1, 0.25)} - {dim})
+    rand = [f"rand_k:{k}" for k in ks]
+    unbiased = rand + ["dither:2", "dither:4", "natural"]
+    return {"gd": ["identity"], "dcgd": unbiased, "diana": unbiased, "marina": unbiased,
+            "ef21": [f"top_k:{k}" for k in ks] + rand}
+
+
+def theory_table(constants: Constants, *, target: float, dim: int | None = None,
+                 methods: Sequence[str] = ("gd", "dcgd", "diana", "marina", "ef21"),
+                 compressors: Sequence[str | Mapping] | None = None,
+                 contraction_vectors: np.ndarray | None = None) -> list[TheoryPoint]:
+    """Theory points for every method x fitting compressor, in that order.
+
+    ``compressors`` default to :func:`default_compressor_specs`; a given list is
+    filtered per method (GD: identity; DCGD/DIANA/MARINA: unbiased; EF21: any).
+    With ``contraction_vectors`` (e.g. local gradients, (B, n, d) or (m, d)),
+    EF21 with a biased (deterministic) compressor uses the measured contraction.
+    """
+    if dim is not None and dim != constants.dim:
+        raise ValueError(f"dim is {dim} but constants.dim is {constants.dim}")
+    defaults = default_compressor_specs(constants.dim)
+    rows = []
+    for method in methods:
+        if method not in RULES:
+            raise ValueError(f"methods: unknown method {method!r} (known: {', '.join(RULES)})")
+        specs = defaults[method] if compressors is None else compressors
+        for spec in specs:
+            comp = make_compressor(spec, constants.dim, key="compressors")
+            if not _fits(method, comp):
+                continue
+            alpha = None
+            if method == "ef21" and contraction_vectors is not None and not comp.unbiased:
+                alpha = measured_contraction(comp, contraction_vectors)
+            rows.append(theory_point(method, comp, constants, target=target, contraction=alpha))
+    return rows
+
+
+def measured_contraction(compressor: Compressor, vectors: np.ndarray, *, draws: int = 8,
+                         seed: int = 0) -> float:
+    """Effective alpha = 1 - max over ``vectors`` of E||C(x) - x||^2 / ||x||^2.
+
+    THEORY.md 2.9: Top-K contracts far more than its worst case K/d on real
+    vectors, so an autotuner should measure alpha. ``vectors`` is (B, n, d) or
+    (m, d); zero rows are skipped. An unbiased Q is measured as Q/(1+omega), as
+    EF21 uses it, with the expectation taken over ``draws`` random draws. The
+    result is never below the compressor's proven alpha (a lower sample value
+    can only be sampling noise) and is a heuristic, not a guarantee: EF21
+    compresses differences g_i - grad f_i, not these vectors.
+    """
+    x = np.asarray(vectors, dtype=np.float64)
+    if x.ndim not in (2, 3) or x.shape[-1] != compressor.dim:
+        d = compressor.dim
+        raise ValueError(f"vectors must have shape (m, {d}) or (B, n, {d}), got {x.shape}")
+    if not np.all(np.isfinite(x)):
+        raise ValueError("vectors must be finite")
+    x = x.reshape(-1, compressor.dim)
+    norms = np.einsum("md,md->m", x, x)
+    x, norms = x[norms > 0], norms[norms > 0]
+    if x.shape[0] == 0:
+        raise ValueError("vectors: every vector is zero, the contraction is undefined")
+    draws = int(draws) if compressor.unbiased else 1  # a biased compressor here is deterministic
+    block = np.broadcast_to(x, (draws, *x.shape))
+    out, _ = compressor.compress(block, trajectory_keys(seed + np.arange(draws)), 0)
+    if compressor.unbiased:
+        out = out / (1.0 + compressor.omega)
+    err = out - block
+    ratio = np.einsum("bmd,bmd->bm", err, err).mean(axis=0) / norms
+    return float(min(1.0, max(1.0 - ratio.max(), compressor.alpha)))
