@@ -235,7 +235,11 @@ ERRORS = [
     (dict(probe={"safety": 0.5}), "probe.safety: must be a number >= 1, got 0.5"),
     (dict(probe={"runs": 0}), "probe.runs: must be an integer >= 1, got 0"),
     (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, data, workers, target, "
-                  "budget, probe, start)"),
+                  "budget, probe, search, start)"),
+    (dict(search={"methods": ["marina", "sgd"]}),
+     "search.methods: must be a list of distinct values from gd, dcgd, diana, marina, ef21, got ['marina', 'sgd']"),
+    (dict(search={"step_range": [8, 2]}),
+     "search.step_range: must be a pair [low, high] with low <= high, each a number > 0, got [8, 2]"),
     (dict(data="nope.svm"), "data.path: file not found: {folder}/nope.svm"),
     (dict(data="."), "data.path: not a file: {folder}"),
     (dict(data={"path": "stations.svm", "format": "parquet"}),

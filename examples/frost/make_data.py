@@ -7,11 +7,13 @@ cellular uplink, so every bit they send costs money. The data are invented:
 a seeded generator draws station climates, nightly weather and the frost
 outcome from a hidden logistic rule.
 
-Features (38): five correlated evening temperatures (16:00-20:00, degrees C
-over 10), dew point, relative humidity, wind speed, cloud cover, soil
-temperature, pressure change, snow cover flag, elevation and slope aspect of
-the station, 12 month indicators and 12 station-day weather-type indicators
-(one-hot, so the file is sparse).
+Features (38), in the units the stations report them (so their scales spread
+over two orders of magnitude, as raw sensor data do): five strongly
+correlated evening temperatures (16:00-20:00, degrees C), dew point (degrees
+C), relative humidity (fraction), wind speed (m/s), cloud cover (fraction),
+soil temperature (degrees C), pressure change (hPa), snow cover flag,
+elevation (km) and slope aspect of the station, 12 month indicators and 12
+weather-type indicators (one-hot, so the file is sparse).
 
     python make_data.py --out stations.svm [--nights 600] [--seed 7] [--drift 0.0]
 """
@@ -53,19 +55,21 @@ def generate(*, nights: int, seed: int, drift: float = 0.0) -> tuple[np.ndarray,
         snow = (rng.random(nights) < np.clip(0.25 * season - 0.05 + 0.2 * elevation[s], 0, 1)).astype(float)
         wtype = rng.integers(0, 12, nights)
         dense = np.column_stack([
-            temps / 10.0, dew / 10.0, humidity, wind / 5.0, cloud, soil / 10.0,
-            dpress / 10.0, snow, np.full(nights, elevation[s]), np.full(nights, aspect[s]),
+            temps, dew, humidity, wind, cloud, soil,
+            dpress, snow, np.full(nights, elevation[s]), np.full(nights, aspect[s]),
         ])
         onehot = np.zeros((nights, 24))
         onehot[np.arange(nights), month] = 1.0
         onehot[np.arange(nights), 12 + wtype] = 1.0
         x = np.hstack([dense, onehot])
+        unit = np.concatenate([[10.0] * 5, [10.0, 1.0, 5.0, 1.0, 10.0, 10.0, 1.0, 1.0, 1.0], np.ones(24)])
         if w_hidden is None:
             w_hidden = np.concatenate([
                 [-0.6, -0.8, -1.0, -1.4, -2.2], [-1.2], [0.8], [-0.9], [-1.6], [-0.7],
                 [0.3], [0.9], [0.5], [-0.4], rng.normal(0, 0.4, 24),
             ])
-        logit = x @ w_hidden + 1.2 + rng.normal(0, 0.3, nights)
+        # The hidden rule sees the readings on a common scale (x / unit).
+        logit = (x / unit) @ w_hidden + 1.2 + rng.normal(0, 0.3, nights)
         y = (rng.random(nights) < 1.0 / (1.0 + np.exp(-logit))).astype(int)
         rows.append(x)
         labels.append(y)

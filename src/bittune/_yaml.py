@@ -171,7 +171,9 @@ REQUIRED: Any = _Required()
 class Param:
     """Constraint of one key: kind, interval or options, default.
 
-    ``kind`` is ``int``, ``real``, ``bool``, ``str`` or ``choice``. ``low`` and
+    ``kind`` is ``int``, ``real``, ``bool``, ``str``, ``choice``, ``choices``
+    (a non-empty list of distinct options) or ``range`` (a pair ``[low, high]``
+    of numbers with low <= high, each within the bounds). ``low`` and
     ``high`` bound numbers; ``closed`` says which ends are included
     (``both``, ``left``, ``right``, ``neither``). A ``None`` value in a file
     means "not given".
@@ -185,6 +187,11 @@ class Param:
     default: Any = None
 
     def describe(self) -> str:
+        if self.kind == "choices":
+            return "a list of distinct values from " + ", ".join(self.options)
+        if self.kind == "range":
+            inner = Param("real", low=self.low, high=self.high, closed=self.closed).describe()
+            return f"a pair [low, high] with low <= high, each {inner}"
         if self.kind == "bool":
             return "true or false"
         if self.kind == "str":
@@ -204,6 +211,19 @@ class Param:
 
     def coerce(self, value: Any) -> tuple[bool, Any]:
         """``(True, normalised value)`` if ``value`` satisfies the constraint."""
+        if self.kind == "choices":
+            if isinstance(value, str):
+                value = [value]
+            ok = (isinstance(value, list) and len(value) > 0 and len(set(map(str, value))) == len(value)
+                  and all(isinstance(v, str) and v in self.options for v in value))
+            return ok, list(value) if ok else value
+        if self.kind == "range":
+            if not (isinstance(value, list) and len(value) == 2):
+                return False, value
+            inner = Param("real", low=self.low, high=self.high, closed=self.closed)
+            (ok1, lo), (ok2, hi) = inner.coerce(value[0]), inner.coerce(value[1])
+            ok = ok1 and ok2 and lo <= hi
+            return ok, (lo, hi) if ok else value
         if self.kind == "bool":
             return isinstance(value, (bool, np.bool_)), bool(value)
         if self.kind in ("str", "choice"):

@@ -161,6 +161,38 @@ def _cmd_theory(args: argparse.Namespace) -> int:
     return EXIT["ok"]
 
 
+def _cmd_tune(args: argparse.Namespace) -> int:
+    from .tune import tune
+
+    result = tune(args.job, output=args.output, trials=args.trials, jobs=args.jobs, seed=args.seed,
+                  run_dir=args.run_dir, storage=args.storage)
+    cfg, exp = result.config, result.config["expected"]
+    if args.json:
+        _emit_json({"config": str(args.output), "exit_code": result.exit_code, "study": result.study_name,
+                    "storage": cfg["provenance"]["storage"], "trials": result.trials,
+                    "method": cfg["method"], "compressor": cfg["compressor"], "step_size": cfg["step_size"],
+                    "sync_probability": cfg.get("sync_probability"), "shift_rate": cfg.get("shift_rate"),
+                    "expected": exp,
+                    "finalists": [e.summary() for e in result.selection.finalists],
+                    "backoff": [e.summary() for e in result.selection.backoff]})
+    else:
+        base = exp["theory_baseline"]
+        print(f"chosen: {cfg['method']} + {_label(cfg['compressor'])}, step {cfg['step_size']:.4g}"
+              + (f", sync probability {cfg['sync_probability']:.3g}" if cfg.get("sync_probability") else "")
+              + (f", shift rate {cfg['shift_rate']:.3g}" if cfg.get("shift_rate") else ""))
+        print(f"expected on {len(exp['validation_seeds'])} fresh seeds: {exp['mean_bits_per_worker']:,.0f} uplink "
+              f"bits/worker (sd {exp['std_bits_per_worker']:,.0f}), {exp['mean_rounds']:.0f} rounds")
+        print(f"theory baseline ({base['method']} + {base['compressor']}): {base['mean_bits_per_worker']:,.0f} "
+              f"bits/worker, reached on {base['reached']} of {len(exp['validation_seeds'])} seeds; "
+              f"gain {exp['gain_over_theory']:.1f}x" + (" or more" if exp["gain_is_lower_bound"] else ""))
+        print(f"config: {args.output}")
+    return result.exit_code
+
+
+def _label(spec: dict) -> str:
+    return ":".join([spec["name"], *(str(v) for k, v in spec.items() if k != "name")])
+
+
 def _params(spec: dict) -> str:
     rest = {k: v for k, v in spec.items() if k != "name"}
     return ", ".join(f"{k}={v}" for k, v in rest.items())
@@ -184,6 +216,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=_nonneg_int, default=0, help="first seed (default 0)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.set_defaults(func=_cmd_replay)
+
+    p = sub.add_parser("tune", help="the main job: probe, theory, search, select; writes a config")
+    p.add_argument("job", help="job file (YAML)")
+    p.add_argument("-o", "--output", required=True, help="config file to write (YAML)")
+    p.add_argument("--trials", type=_positive_int, help="trial budget (overrides search.trials)")
+    p.add_argument("--jobs", type=_positive_int, help="parallel processes (overrides search.jobs)")
+    p.add_argument("--seed", type=_nonneg_int, help="search seed (overrides search.seed)")
+    p.add_argument("--run-dir", help="folder for the study storage (default: beside the output, NAME.run)")
+    p.add_argument("--storage", help="Optuna storage URL (default: a journal file in the run folder)")
+    p.add_argument("--json", action="store_true", help="print one JSON summary document on stdout")
+    p.set_defaults(func=_cmd_tune)
 
     p = sub.add_parser("probe", help="gradient check and smoothness constants of a job's problem")
     p.add_argument("job", help="job file (YAML)")

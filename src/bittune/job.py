@@ -22,11 +22,13 @@ from bittune._yaml import REQUIRED, Param, check_mapping, parse_yaml, read_bytes
 from bittune.errors import InputError
 
 __all__ = [
-    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "Job",
+    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "Job",
     "load_job", "parse_job", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
 ]
 
 MODELS = ("logistic_nonconvex", "least_squares")
+METHOD_NAMES = ("gd", "dcgd", "diana", "marina", "ef21")
+COMPRESSOR_NAMES = ("identity", "rand_k", "top_k", "dither", "natural")
 SPLITS = ("iid", "by_label", "dirichlet", "column")
 DATA_FORMATS = ("svmlight", "csv", "npz")
 #: File extension -> data format, used when ``data.format`` is not given.
@@ -77,6 +79,27 @@ class ProbeSpec:
 
 
 @dataclass(frozen=True)
+class SearchSpec:
+    methods: list
+    compressors: list
+    trials: int
+    jobs: int
+    seeds: int
+    seed: int
+    step_range: tuple
+    sync_range: tuple
+    shift_range: tuple
+    levels_range: tuple
+    pruner: str
+    validation_seeds: int
+    finalists: int
+    backoff_factor: float
+    backoff_steps: int
+    backoff_tolerance: float
+    bits_cap_factor: float
+
+
+@dataclass(frozen=True)
 class StartSpec:
     kind: str  # "zeros" | "random" | "file"
     seed: int | None
@@ -95,6 +118,7 @@ class Job:
     budget: BudgetSpec
     start: StartSpec
     probe: ProbeSpec
+    search: SearchSpec
     raw: dict = field(repr=False)
     digest: str  # sha256 hex of the job file bytes
 
@@ -137,6 +161,26 @@ SECTIONS: dict[str, dict[str, Param]] = {
         "gradient_tolerance": Param("real", low=0, closed="right", default=1e-5),
         "seed": Param("int", low=0, default=0),
         "lower_bound": Param("real"),  # a known lower bound of f; default: the model's
+    },
+    "search": {
+        "methods": Param("choices", options=METHOD_NAMES, default=list(METHOD_NAMES)),
+        "compressors": Param("choices", options=COMPRESSOR_NAMES,
+                             default=["rand_k", "top_k", "dither", "natural"]),
+        "trials": Param("int", low=1, default=60),
+        "jobs": Param("int", low=1, default=1),
+        "seeds": Param("int", low=1, default=3),
+        "seed": Param("int", low=0, default=0),
+        "step_range": Param("range", low=0, closed="right", default=(0.5, 4096.0)),
+        "sync_range": Param("range", low=0, closed="right", default=(0.1, 10.0)),
+        "shift_range": Param("range", low=0, closed="right", default=(0.1, 10.0)),
+        "levels_range": Param("range", low=1, default=(1.0, 16.0)),
+        "pruner": Param("choice", options=("median", "none"), default="median"),
+        "validation_seeds": Param("int", low=1, default=5),
+        "finalists": Param("int", low=1, default=3),
+        "backoff_factor": Param("real", low=1, closed="right", default=2.0),
+        "backoff_steps": Param("int", low=0, default=3),
+        "backoff_tolerance": Param("real", low=0, default=0.05),
+        "bits_cap_factor": Param("real", low=1, closed="right", default=4.0),
     },
     "start": {
         "seed": Param("int", low=0),
@@ -211,6 +255,7 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
         path=Path(source), data=data, model=top["model"], regularization=top["regularization"],
         workers=WorkersSpec(**values["workers"]), target=TargetSpec(**values["target"]),
         budget=BudgetSpec(**values["budget"]), start=start, probe=ProbeSpec(**values["probe"]),
+        search=SearchSpec(**values["search"]),
         raw=deepcopy(mapping), digest=digest,
     )
 

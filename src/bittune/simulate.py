@@ -24,7 +24,13 @@ STATUS = {
     "budget": "spent the round budget before the target",
     "bits_cap": "spent the bit budget before the target",
     "diverged": "diverged (non-finite values, or ||grad f||^2 far above its start)",
+    "stalled": "stalled (no new best ||grad f||^2 for a window of rounds)",
+    "stopped": "stopped by the caller (e.g. a pruned trial)",
 }
+
+#: A new best ||grad f||^2 must beat the old one by this factor to count as
+#: progress for the stall rule (common practice, no source).
+STALL_IMPROVEMENT = 0.99
 
 
 @dataclass
@@ -73,6 +79,8 @@ def simulate(
     max_bits_per_worker: float | None = None,
     divergence_factor: float = 1e6,
     loss_every: int = 0,
+    stall_window=None,
+    monitor=None,
 ) -> list[Trajectory]:
     """Simulate ``len(seeds)`` trajectories of ``method`` at once.
 
@@ -80,6 +88,13 @@ def simulate(
     ``shift_rate``) are scalars or one value per trajectory. ``target`` is
     absolute (see :func:`absolute_target`). The loss f is recorded at x^0,
     every ``loss_every`` rounds (0: never in between) and at the last iterate.
+
+    ``stall_window`` (scalar or per trajectory; None: off) ends a trajectory
+    that has not improved its best ||grad f||^2 by 1% for that many rounds.
+    ``monitor(k, index, uplink_bits, grad_norm_sq)`` is called after every
+    round with the still-running trajectories (their indices into the batch,
+    cumulative bits, current ||grad f||^2); if it returns True the batch
+    stops and those trajectories end as ``stopped``.
     """
     seeds = np.atleast_1d(np.asarray(seeds, dtype=np.int64))
     B, d, n = seeds.shape[0], problem.dim, problem.n_workers
@@ -101,6 +116,10 @@ def simulate(
     loss_log = [(0, active.copy(), loss0.mean(axis=1))]
     out: dict[int, tuple[str, int]] = {}
     final_x = np.empty((B, d))
+    window = None if stall_window is None else np.broadcast_to(np.asarray(stall_window, dtype=np.float64), (B,))
+    best = gn.copy()
+    last_gain = np.zeros(B)
+    stop = False
 
     for k in range(max_rounds + 1):
         status = np.full(active.shape, "", dtype=object)
@@ -108,6 +127,13 @@ def simulate(
         status[gn <= target] = "reached"
         if max_bits_per_worker is not None:
             status[(status == "") & (up[active] >= max_bits_per_worker)] = "bits_cap"
+        if window is not None:
+            better = gn < STALL_IMPROVEMENT * best[active]
+            best[active[better]] = gn[better]
+            last_gain[active[better]] = k
+            status[(status == "") & (k - last_gain[active] >= window[active])] = "stalled"
+        if stop:
+            status[status == ""] = "stopped"
         if k == max_rounds:
             status[status == ""] = "budget"
         done = status != ""
@@ -139,6 +165,8 @@ def simulate(
         row = np.full(B, np.nan)
         row[active] = up[active]
         up_hist.append(row)
+        if monitor is not None and monitor(k + 1, active, up[active], gn):
+            stop = True
 
     with np.errstate(over="ignore", invalid="ignore"):
         loss_end = problem.local_losses(final_x).mean(axis=1)

@@ -1,0 +1,415 @@
+"""The Optuna study: theory-relative space, seeding, objective, pruning, parallel trials.
+
+The search never asks for a raw step size (DESIGN.md, "Theory-relative
+search"): a trial picks a method, a compressor and its density, then a
+multiplier over the theory step of that method at that density, a multiplier
+over MARINA's theory sync probability zeta/d, and one over DIANA's shift rate
+1/(1+omega). The theory point (multiplier 1) and a ladder of larger steps are
+enqueued before any worker starts, so they run first.
+
+A trial's value is the uplink bits per worker to reach the target, averaged
+over the same few seeds for every trial (common random numbers); the seeds run
+as one batch in the engine. Missing the target costs a finite penalty that
+grows with the distance to it; diverging costs twice that.
+
+Parallel trials are processes sharing one Optuna storage (STYLE.md, "Optuna
+facts"): a journal file in the run directory by default, any Optuna storage URL
+otherwise. The trial budget is global: a process asks for a trial only while
+fewer than ``budget`` trials are finished or running.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass, field
+
+import numpy as np
+import optuna
+from optuna.trial import TrialState
+
+from .compressors import COMPRESSORS, make_compressor
+from .constants import Constants
+from .simulate import Trajectory, simulate
+from .theory import measured_contraction, theory_point
+
+__all__ = [
+    "Candidate", "Space", "Objective", "score", "open_storage", "open_study", "enqueue_seeds",
+    "fail_stale_trials", "run_trials", "search_seeds", "COUNTED",
+]
+
+#: Trial states that count against the global budget.
+COUNTED = (TrialState.COMPLETE, TrialState.PRUNED, TrialState.RUNNING)
+#: Step multipliers enqueued above the theory point (DESIGN.md: theory is timid).
+SEED_LADDER = (1.0, 2.0, 4.0, 16.0, 64.0, 256.0)
+#: Minimum stall window in rounds; MARINA's grows like 1/p (DESIGN.md measurements).
+STALL_ROUNDS = 100
+#: Bits between pruning checkpoints grow by this factor (common practice, no source).
+CHECKPOINT_GROWTH = 2.0
+
+
+@dataclass(frozen=True)
+class Candidate:
+    """One setting in absolute units, with the multipliers it came from."""
+
+    method: str
+    compressor: dict
+    step_size: float
+    sync_probability: float | None = None
+    shift_rate: float | None = None
+    step_mult: float = 1.0
+    sync_mult: float | None = None
+    shift_mult: float | None = None
+
+    def params(self) -> dict:
+        """Method parameters as :func:`bittune.simulate.simulate` takes them."""
+        out = {}
+        if self.sync_probability is not None:
+            out["sync_probability"] = self.sync_probability
+        if self.shift_rate is not None:
+            out["shift_rate"] = self.shift_rate
+        return out
+
+    @property
+    def label(self) -> str:
+        c = self.compressor
+        return ":".join([c["name"], *(str(v) for k, v in c.items() if k != "name")])
+
+    def key(self) -> tuple:
+        """Identity for de-duplication: same method, compressor, and values to 4 digits."""
+        r = lambda v: None if v is None else float(f"{v:.4g}")  # noqa: E731
+        return (self.method, self.label, r(self.step_size), r(self.sync_probability), r(self.shift_rate))
+
+    def with_step(self, step: float) -> "Candidate":
+        return Candidate(self.method, self.compressor, step, self.sync_probability, self.shift_rate,
+                         self.step_mult * step / self.step_size, self.sync_mult, self.shift_mult)
+
+    def to_config(self) -> dict:
+        out = {"method": self.method, "compressor": dict(self.compressor), "step_size": float(self.step_size)}
+        if self.sync_probability is not None:
+            out["sync_probability"] = float(self.sync_probability)
+        if self.shift_rate is not None:
+            out["shift_rate"] = float(self.shift_rate)
+        return out
+
+
+class Space:
+    """The search space of one job, in theory-relative units."""
+
+    def __init__(self, spec, constants: Constants, *, target: float, contraction_vectors=None):
+        self.spec = spec
+        self.constants = constants
+        self.dim = constants.dim
+        self.target = float(target)
+        self._vectors = contraction_vectors
+        self._theory: dict[tuple, object] = {}
+        self.methods = list(spec.methods)
+        self.compressors = {m: self._fitting(m) for m in self.methods}
+        empty = [m for m, c in self.compressors.items() if not c]
+        if empty:
+            from .errors import InputError
+
+            raise InputError(f"search.compressors: no compressor in {spec.compressors} fits "
+                             f"{', '.join(empty)} (dcgd, diana, marina need an unbiased one: rand_k, "
+                             f"dither, natural, identity)")
+
+    # ------------------------------------------------------------ structure
+    def _fitting(self, method: str) -> list[str]:
+        if method == "gd":
+            return ["identity"]
+        names = [c for c in self.spec.compressors if method == "ef21" or COMPRESSORS[c](
+            self.dim, *([1] if COMPRESSORS[c].params else [])).unbiased]
+        return names
+
+    def _density_param(self, name: str) -> tuple[str, int, int] | None:
+        """(param name, low, high) of a compressor's density, None if it has none."""
+        if name in ("rand_k", "top_k"):
+            return f"{name}.k", 1, self.dim
+        if name == "dither":
+            lo, hi = self.spec.levels_range
+            return "dither.levels", int(lo), int(hi)
+        return None
+
+    def theory(self, method: str, compressor: dict):
+        """The theory point of ``method`` with ``compressor`` (cached)."""
+        key = (method, tuple(sorted(compressor.items())))
+        if key not in self._theory:
+            comp = make_compressor(compressor, self.dim)
+            alpha = None
+            if method == "ef21" and not comp.unbiased and self._vectors is not None:
+                alpha = measured_contraction(comp, self._vectors)
+            self._theory[key] = theory_point(method, comp, self.constants, target=self.target,
+                                             contraction=alpha)
+        return self._theory[key]
+
+    def candidate(self, method: str, compressor: dict, *, step_mult: float = 1.0,
+                  sync_mult: float | None = None, shift_mult: float | None = None) -> Candidate:
+        t = self.theory(method, compressor)
+        sync = shift = None
+        if method == "marina":
+            sync_mult = 1.0 if sync_mult is None else sync_mult
+            sync = min(1.0, sync_mult * t.sync_probability)
+        if method == "diana":
+            shift_mult = 1.0 if shift_mult is None else shift_mult
+            shift = min(1.0, shift_mult * t.shift_rate)
+        return Candidate(method, dict(compressor), step_mult * t.step_size, sync, shift,
+                         step_mult, sync_mult, shift_mult)
+
+    # --------------------------------------------------------------- trials
+    def suggest(self, trial: optuna.Trial) -> Candidate:
+        """Define-by-run: draw one candidate for ``trial``."""
+        s = self.spec
+        method = trial.suggest_categorical("method", self.methods)
+        name = trial.suggest_categorical(f"{method}.compressor", self.compressors[method])
+        compressor = {"name": name}
+        dp = self._density_param(name)
+        if dp is not None:
+            pname, lo, hi = dp
+            compressor[pname.split(".")[1]] = trial.suggest_int(pname, lo, hi, log=True)
+        step_mult = trial.suggest_float(f"{method}.step_mult", *s.step_range, log=True)
+        sync_mult = shift_mult = None
+        if method == "marina":
+            sync_mult = trial.suggest_float("marina.sync_mult", *s.sync_range, log=True)
+        if method == "diana":
+            shift_mult = trial.suggest_float("diana.shift_mult", *s.shift_range, log=True)
+        return self.candidate(method, compressor, step_mult=step_mult, sync_mult=sync_mult,
+                              shift_mult=shift_mult)
+
+    def theory_density(self, method: str) -> dict:
+        """The compressor setting with the fewest predicted bits for ``method``.
+
+        Densities are tried on a log grid (theory usually picks an extreme K,
+        THEORY.md 2.4 and 2.9), dithering over its level range.
+        """
+        best, best_bits = None, math.inf
+        for name in self.compressors[method]:
+            dp = self._density_param(name)
+            if dp is None:
+                options = [{"name": name}]
+            else:
+                pname, lo, hi = dp
+                grid = np.unique(np.round(np.geomspace(lo, hi, 12)).astype(int))
+                options = [{"name": name, pname.split(".")[1]: int(v)} for v in grid]
+            for comp in options:
+                bits = self.theory(method, comp).predicted_bits_per_worker
+                if bits < best_bits:
+                    best, best_bits = comp, bits
+        return best
+
+    def seed_points(self) -> list[dict]:
+        """Enqueue-ready params: theory point and step ladder per method, clipped to the bounds."""
+        s = self.spec
+        out, seen = [], set()
+        for method in self.methods:
+            comp = self.theory_density(method)
+            base = {"method": method, f"{method}.compressor": comp["name"]}
+            dp = self._density_param(comp["name"])
+            if dp is not None:
+                pname, lo, hi = dp
+                base[pname] = int(min(max(comp[pname.split(".")[1]], lo), hi))
+            if method == "marina":
+                base["marina.sync_mult"] = _clip(1.0, s.sync_range)
+            if method == "diana":
+                base["diana.shift_mult"] = _clip(1.0, s.shift_range)
+            for m in SEED_LADDER:
+                params = dict(base, **{f"{method}.step_mult": _clip(m, s.step_range)})
+                key = tuple(sorted(params.items()))
+                if key not in seen:
+                    seen.add(key)
+                    out.append(params)
+        return out
+
+    def from_params(self, params: dict) -> Candidate:
+        """Rebuild the candidate of a finished trial from its params."""
+        method = params["method"]
+        name = params[f"{method}.compressor"]
+        compressor = {"name": name}
+        dp = self._density_param(name)
+        if dp is not None:
+            compressor[dp[0].split(".")[1]] = int(params[dp[0]])
+        return self.candidate(method, compressor, step_mult=params[f"{method}.step_mult"],
+                              sync_mult=params.get("marina.sync_mult") if method == "marina" else None,
+                              shift_mult=params.get("diana.shift_mult") if method == "diana" else None)
+
+
+def _clip(value: float, bounds: tuple) -> float:
+    return float(min(max(value, bounds[0]), bounds[1]))
+
+
+# -------------------------------------------------------------------- objective
+def search_seeds(spec) -> list[int]:
+    """The common random seeds every trial uses."""
+    return [spec.seed * 1000 + j for j in range(spec.seeds)]
+
+
+def score(runs: list[Trajectory], *, target: float, cap: float | None) -> tuple[float, list[float]]:
+    """Mean over seeds of: bits if reached; else a penalty growing with the distance to target.
+
+    Missed (budget, bit cap, stall, stop): max(bits, cap) x (2 + log10(best ||grad f||^2 / target)),
+    at least twice the cap. Diverged: twice that. (Our own rule: it keeps values finite and
+    ordered, so the sampler still learns from failures; no source.)
+    """
+    values = []
+    for r in runs:
+        if r.reached:
+            values.append(r.uplink_bits)
+            continue
+        finite = r.grad_norm_sq[np.isfinite(r.grad_norm_sq)]
+        best = float(finite.min()) if finite.size else math.inf
+        distance = math.log10(best / target) if math.isfinite(best) and best > 0 else 12.0
+        base = max(r.uplink_bits, cap or 0.0, 1.0)
+        v = base * (2.0 + max(distance, 0.0))
+        values.append(2.0 * v if r.status == "diverged" else v)
+    return float(np.mean(values)), values
+
+
+@dataclass
+class Objective:
+    """Callable objective for one process: problem, space and the job's budget."""
+
+    problem: object
+    space: Space
+    x0: np.ndarray
+    target: float
+    max_rounds: int
+    max_bits: float | None
+    seeds: list[int]
+    worker: int = 0
+    _best: float = field(default=math.inf, repr=False)
+
+    def __call__(self, trial: optuna.Trial) -> float:
+        cand = self.space.suggest(trial)
+        trial.set_user_attr("worker", self.worker)
+        trial.set_user_attr("pid", os.getpid())
+        trial.set_user_attr("candidate", _plain(cand.to_config()))
+        cap = self._cap(trial.study)
+        comp = make_compressor(cand.compressor, self.problem.dim)
+        p = cand.sync_probability or 1.0
+        window = max(STALL_ROUNDS, 10.0 / p) if cand.method == "marina" else STALL_ROUNDS
+        monitor = _PruneMonitor(trial, len(self.seeds), self.target, start_bits=32.0 * self.problem.dim * 4)
+        runs = simulate(self.problem, method=cand.method, compressor=comp, step_size=cand.step_size,
+                        seeds=self.seeds, target=self.target, max_rounds=self.max_rounds, x0=self.x0,
+                        params=cand.params(), max_bits_per_worker=cap, stall_window=window,
+                        monitor=monitor)
+        value, per_seed = score(runs, target=self.target, cap=cap)
+        trial.set_user_attr("status", [r.status for r in runs])
+        trial.set_user_attr("bits", [float(r.uplink_bits) for r in runs])
+        trial.set_user_attr("rounds", [int(r.rounds) for r in runs])
+        trial.set_user_attr("reached", int(sum(r.reached for r in runs)))
+        trial.set_user_attr("penalised", [float(v) for v, r in zip(per_seed, runs) if not r.reached])
+        trial.set_user_attr("bits_cap", cap)
+        if monitor.pruned:
+            raise optuna.TrialPruned(f"pruned at {monitor.step} bit checkpoints")
+        return value
+
+    def _cap(self, study: optuna.Study) -> float | None:
+        """Bit cap: bits_cap_factor x the best all-seeds-reached value so far (and the job's cap)."""
+        best = self._best
+        for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
+            if t.user_attrs.get("reached") == len(self.seeds) and t.value is not None:
+                best = min(best, t.value)
+        self._best = best
+        caps = [c for c in (self.max_bits, self.space.spec.bits_cap_factor * best) if c is not None]
+        caps = [c for c in caps if math.isfinite(c)]
+        return min(caps) if caps else None
+
+
+class _PruneMonitor:
+    """Reports mean log10(best ||grad f||^2 / target) over the seeds at geometric bit checkpoints."""
+
+    def __init__(self, trial, n_seeds: int, target: float, *, start_bits: float):
+        self.trial, self.target = trial, target
+        self.best = np.full(n_seeds, np.inf)
+        self.next_bits = start_bits
+        self.step = 0
+        self.pruned = False
+
+    def __call__(self, k, index, bits, gn) -> bool:
+        self.best[index] = np.minimum(self.best[index], np.where(np.isfinite(gn), gn, np.inf))
+        if bits.size == 0 or bits.mean() < self.next_bits:
+            return False
+        with np.errstate(divide="ignore"):
+            progress = np.log10(np.maximum(self.best, 1e-300) / self.target)
+        value = float(np.mean(np.minimum(progress, 1e6)))
+        self.trial.report(value, self.step)
+        self.step += 1
+        self.next_bits *= CHECKPOINT_GROWTH
+        if self.trial.should_prune():
+            self.pruned = True
+            return True
+        return False
+
+
+def _plain(doc):
+    if isinstance(doc, dict):
+        return {k: _plain(v) for k, v in doc.items()}
+    if isinstance(doc, (np.floating, np.integer)):
+        return doc.item()
+    return doc
+
+
+# ------------------------------------------------------------------- storage
+def open_storage(url: str):
+    """An Optuna storage: a database URL as is, anything else a journal file path."""
+    if "://" in url:
+        return url
+    from optuna.storages import JournalStorage
+    from optuna.storages.journal import JournalFileBackend
+
+    return JournalStorage(JournalFileBackend(str(url)))
+
+
+def open_study(storage, name: str, *, sampler_seed: int, pruner: str) -> optuna.Study:
+    sampler = optuna.samplers.TPESampler(seed=sampler_seed)
+    prune = (optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=1)
+             if pruner == "median" else optuna.pruners.NopPruner())
+    return optuna.load_study(study_name=name, storage=storage, sampler=sampler, pruner=prune)
+
+
+def fail_stale_trials(study: optuna.Study) -> int:
+    """Mark trials left RUNNING by a killed process as FAIL (the journal has no heartbeat)."""
+    stale = study.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
+    for t in stale:
+        study._storage.set_trial_user_attr(t._trial_id, "failed_reason", "left running by a stopped process")
+        study._storage.set_trial_state_values(t._trial_id, state=TrialState.FAIL)
+    return len(stale)
+
+
+def enqueue_seeds(study: optuna.Study, space: Space) -> int:
+    """Enqueue the theory points and step ladder (once per study); returns how many."""
+    if study.user_attrs.get("seeded"):
+        return 0
+    points = space.seed_points()
+    for params in points:
+        study.enqueue_trial(params, user_attrs={"seed_point": True})
+    study.set_user_attr("seeded", True)
+    return len(points)
+
+
+def run_trials(study: optuna.Study, objective: Objective, *, budget: int) -> int:
+    """Run trials in this process until ``budget`` trials are finished or running anywhere.
+
+    Returns how many this process ran. A trial whose number shows that the
+    budget was already taken when it was asked for (a race between processes)
+    is told FAIL with the reason recorded, and the loop ends.
+    """
+    done = 0
+    while len(study.get_trials(deepcopy=False, states=COUNTED)) < budget:
+        trial = study.ask()
+        ahead = [t for t in study.get_trials(deepcopy=False, states=COUNTED) if t.number < trial.number]
+        if len(ahead) >= budget:
+            study._storage.set_trial_user_attr(trial._trial_id, "failed_reason", "over the trial budget")
+            study.tell(trial, state=TrialState.FAIL)
+            break
+        try:
+            value = objective(trial)
+        except optuna.TrialPruned:
+            study.tell(trial, state=TrialState.PRUNED)
+        except Exception as exc:  # a bug or a numerical fault: record it, keep the study
+            study._storage.set_trial_user_attr(trial._trial_id, "failed_reason", f"{type(exc).__name__}: {exc}")
+            study.tell(trial, state=TrialState.FAIL)
+            raise
+        else:
+            study.tell(trial, value)
+        done += 1
+    return done

@@ -1,0 +1,159 @@
+"""Validation on fresh seeds, robustness back-off, final choice.
+
+Bits to target vary a lot between seeds for some methods (DESIGN.md: MARINA
+1.3-2.8x), so the best trial of a search is partly luck. The best few
+distinct candidates are re-run on seeds the search never used; the winner is
+the one with the fewest mean bits that reached the target on every fresh seed.
+Its step is then halved (by ``backoff_factor``, at most ``backoff_steps``
+times) while the mean bits grow by less than ``backoff_tolerance``, so the
+chosen point sits away from the divergence edge. The theory setting of the
+winning method runs on the same seeds as the baseline.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from optuna.trial import TrialState
+
+from .compressors import make_compressor
+from .search import Candidate, Space
+from .simulate import Trajectory, simulate
+
+__all__ = ["Evaluation", "Selection", "validation_seeds", "evaluate", "select"]
+
+
+@dataclass
+class Evaluation:
+    """A candidate run on the fresh seeds."""
+
+    candidate: Candidate
+    runs: list[Trajectory] = field(repr=False)
+
+    @property
+    def all_reached(self) -> bool:
+        return all(r.reached for r in self.runs)
+
+    @property
+    def bits(self) -> np.ndarray:
+        return np.array([r.uplink_bits for r in self.runs])
+
+    @property
+    def rounds(self) -> np.ndarray:
+        return np.array([r.rounds for r in self.runs])
+
+    @property
+    def mean_bits(self) -> float:
+        return float(self.bits.mean())
+
+    def summary(self) -> dict:
+        b, k = self.bits, self.rounds
+        return {
+            "method": self.candidate.method,
+            "compressor": self.candidate.label,
+            "step_size": float(self.candidate.step_size),
+            "sync_probability": self.candidate.sync_probability,
+            "shift_rate": self.candidate.shift_rate,
+            "reached": int(sum(r.reached for r in self.runs)),
+            "seeds": len(self.runs),
+            "status": [r.status for r in self.runs],
+            "mean_bits_per_worker": float(b.mean()),
+            "std_bits_per_worker": float(b.std(ddof=1)) if len(b) > 1 else 0.0,
+            "mean_rounds": float(k.mean()),
+            "std_rounds": float(k.std(ddof=1)) if len(k) > 1 else 0.0,
+            "bits_per_worker": [float(v) for v in b],
+            "rounds": [int(v) for v in k],
+        }
+
+
+@dataclass
+class Selection:
+    winner: Evaluation
+    baseline: Evaluation
+    finalists: list[Evaluation]
+    backoff: list[Evaluation]
+    seeds: list[int]
+
+    @property
+    def all_reached(self) -> bool:
+        return self.winner.all_reached
+
+    def gain(self) -> float:
+        """Baseline mean bits over winner mean bits (a lower bound if the baseline missed)."""
+        return self.baseline.mean_bits / self.winner.mean_bits
+
+
+def validation_seeds(spec) -> list[int]:
+    """Fresh seeds, disjoint from :func:`bittune.search.search_seeds` (those are < 10^6)."""
+    return [1_000_000 + spec.seed * 1000 + j for j in range(spec.validation_seeds)]
+
+
+def evaluate(ws, candidates: list[Candidate], seeds: list[int]) -> list[Evaluation]:
+    """Run each candidate on ``seeds``; candidates of one method and compressor share a batch."""
+    groups: dict[tuple, list[int]] = {}
+    for i, c in enumerate(candidates):
+        groups.setdefault((c.method, c.label), []).append(i)
+    out: list[Evaluation | None] = [None] * len(candidates)
+    job = ws.job
+    for idx in groups.values():
+        first = candidates[idx[0]]
+        S = len(seeds)
+        steps = np.repeat([candidates[i].step_size for i in idx], S)
+        params = {}
+        for key in ("sync_probability", "shift_rate"):
+            vals = [getattr(candidates[i], key) for i in idx]
+            if vals[0] is not None:
+                params[key] = np.repeat(vals, S)
+        runs = simulate(ws.problem, method=first.method, compressor=make_compressor(first.compressor, ws.problem.dim),
+                        step_size=steps, seeds=np.tile(seeds, len(idx)), target=ws.target,
+                        max_rounds=job.budget.max_rounds, x0=ws.x0, params=params,
+                        max_bits_per_worker=job.budget.max_bits_per_worker)
+        for j, i in enumerate(idx):
+            out[i] = Evaluation(candidates[i], runs[j * S:(j + 1) * S])
+    return out
+
+
+def finalists(study, space: Space, *, count: int) -> list[Candidate]:
+    """The best ``count`` distinct completed candidates, best first."""
+    trials = sorted((t for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
+                     if t.value is not None and math.isfinite(t.value)), key=lambda t: t.value)
+    out, seen = [], set()
+    for t in trials:
+        cand = space.from_params(t.params)
+        if cand.key() not in seen:
+            seen.add(cand.key())
+            out.append(cand)
+        if len(out) == count:
+            break
+    return out
+
+
+def select(ws, space: Space, study) -> Selection:
+    """Validate the finalists, back the winner's step off, run the theory baseline."""
+    spec = ws.job.search
+    seeds = validation_seeds(spec)
+    cands = finalists(study, space, count=spec.finalists)
+    if not cands:
+        from .errors import BittuneError
+
+        raise BittuneError("no trial completed: nothing to validate (see the trials' failed_reason)")
+    evals = evaluate(ws, cands, seeds)
+    ok = [e for e in evals if e.all_reached]
+    winner = min(ok, key=lambda e: e.mean_bits) if ok else min(
+        evals, key=lambda e: (-sum(r.reached for r in e.runs), e.mean_bits))
+    backoff: list[Evaluation] = []
+    if winner.all_reached and spec.backoff_steps > 0:
+        steps = [winner.candidate.step_size / spec.backoff_factor ** j for j in range(1, spec.backoff_steps + 1)]
+        backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds)
+        limit = winner.mean_bits * (1.0 + spec.backoff_tolerance)
+        chosen = winner
+        for e in backoff:
+            if not (e.all_reached and e.mean_bits <= limit):
+                break
+            chosen = e
+        winner = chosen
+    base_comp = space.theory_density(winner.candidate.method)
+    baseline = evaluate(ws, [space.candidate(winner.candidate.method, base_comp)], seeds)[0]
+    return Selection(winner=winner, baseline=baseline, finalists=evals, backoff=backoff, seeds=seeds)

@@ -1,0 +1,290 @@
+"""The main job: probe, theory, search, select, write the config.
+
+``tune`` runs every stage of DESIGN.md's data flow in order and writes the
+config atomically. Parallel trials run in ``jobs`` processes (joblib), each
+with its own sampler seed from ``SeedSequence(seed).spawn`` and
+single-threaded numerics, all sharing one Optuna storage; a killed run
+restarted with the same run directory resumes from that storage.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import math
+import sys
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import optuna
+from optuna.trial import TrialState
+
+from . import __version__
+from .config import write_config
+from .errors import EXIT, InputError
+from .job import Job, load_job
+from .probe import probe_workspace
+from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials, open_storage,
+                     open_study, run_trials, search_seeds)
+from .select import Selection, select
+from .workspace import open_job
+
+__all__ = ["TuneResult", "tune", "study_name", "worker_main"]
+
+
+@dataclass
+class TuneResult:
+    exit_code: int
+    config: dict
+    selection: Selection
+    study_name: str
+    storage: str
+    trials: dict
+
+
+def study_name(job: Job) -> str:
+    return f"bittune-{job.digest[:16]}"
+
+
+def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None, seed: int | None = None,
+         run_dir=None, storage: str | None = None, progress=None) -> TuneResult:
+    """Tune the job and write the config to ``output``; returns what was written and why."""
+    optuna.logging.set_verbosity(optuna.logging.WARNING)  # our own progress lines instead
+    job = load_job(job_path)
+    spec = job.search
+    overrides = {k: v for k, v in (("trials", trials), ("jobs", jobs), ("seed", seed)) if v is not None}
+    for key, value in overrides.items():
+        if value < (0 if key == "seed" else 1):
+            raise InputError(f"--{key}: must be an integer >= {0 if key == 'seed' else 1}, got {value}")
+    if overrides:
+        from dataclasses import replace
+
+        spec = replace(spec, **overrides)
+        job = replace(job, search=spec)
+    output = Path(output)
+    run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
+    run_dir.mkdir(parents=True, exist_ok=True)
+    storage_url = storage or str(run_dir / "study.journal")
+    log = progress or _Progress(total=spec.trials)
+
+    ws = open_job(job)
+    log.note(f"problem: {ws.problem.n_workers} workers, d = {ws.problem.dim}, "
+             f"{int(ws.problem.worker_sizes.sum())} samples; target ||grad f||^2 <= {ws.target:.3g}")
+    constants, report = probe_workspace(ws)
+    log.note(f"probe: gradient check passed (max rel. error {report.gradient_check.max_rel_error:.1e}); "
+             f"L = {constants.L:.4g}, L_qm = {constants.L_qm:.4g}, L_pm = {constants.L_pm:.4g} "
+             f"({report.oracle_calls} oracle calls, {report.seconds:.1f} s)")
+    vectors, _ = ws.problem.local_grads(report.points)
+    space = Space(spec, constants, target=ws.target, contraction_vectors=vectors)
+
+    name = study_name(job)
+    store = open_storage(storage_url)
+    study = optuna.create_study(study_name=name, storage=store, direction="minimize", load_if_exists=True)
+    _check_study(study, job)
+    stale = fail_stale_trials(study)
+    if stale:
+        log.note(f"resume: {stale} trial(s) left running by a stopped run marked failed")
+    seeded = enqueue_seeds(study, space)
+    if seeded:
+        log.note(f"search: {seeded} theory seed points enqueued; {spec.trials} trials, {spec.jobs} process(es)")
+    else:
+        done = len(study.get_trials(deepcopy=False, states=COUNTED))
+        log.note(f"resume: {done} trial(s) already done of {spec.trials}")
+    study.set_user_attr("constants", _plain(constants.to_dict()))
+    study.set_user_attr("probe_points", _plain(report.points.tolist()))
+
+    seeds = np.random.SeedSequence(spec.seed).spawn(spec.jobs)
+    sampler_seeds = [int(s.generate_state(1)[0]) for s in seeds]
+    watcher = _Watcher(study, log, spec.trials)
+    watcher.start()
+    try:
+        if spec.jobs == 1:
+            objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
+                                  max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
+                                  seeds=search_seeds(spec), worker=0)
+            run_trials(open_study(store, name, sampler_seed=sampler_seeds[0], pruner=spec.pruner), objective,
+                       budget=spec.trials)
+        else:
+            from joblib import Parallel, delayed
+
+            Parallel(n_jobs=spec.jobs, backend="loky")(
+                delayed(worker_main)(str(job.path), storage_url, name, spec.trials, sampler_seeds[i], i, overrides)
+                for i in range(spec.jobs))
+    finally:
+        watcher.stop()
+
+    log.note("select: validating the best candidates on fresh seeds")
+    selection = select(ws, space, study)
+    config = _config_doc(ws, job, selection, constants, name, storage_url, spec)
+    write_config(output, config)
+    counts = {s.name.lower(): len(study.get_trials(deepcopy=False, states=(s,)))
+              for s in (TrialState.COMPLETE, TrialState.PRUNED, TrialState.FAIL)}
+    code = EXIT["ok"] if selection.all_reached else EXIT["no_candidate"]
+    log.note(f"wrote {output}" + ("" if selection.all_reached else " (best effort: no candidate reached the "
+                                                                     "target on every fresh seed)"))
+    return TuneResult(code, config, selection, name, storage_url, counts)
+
+
+def worker_main(job_path: str, storage_url: str, name: str, budget: int, sampler_seed: int, index: int,
+                overrides: dict) -> int:
+    """One worker process: rebuild the problem, read the probe's constants from the study, run trials."""
+    from dataclasses import replace
+
+    from threadpoolctl import threadpool_limits
+
+    from .constants import Constants
+    from .problems import _shards
+
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    _shards.set_threads(1)  # the processes already fill the cores
+    with threadpool_limits(1):
+        job = load_job(job_path)
+        if overrides:
+            job = replace(job, search=replace(job.search, **overrides))
+        ws = open_job(job)
+        store = open_storage(storage_url)
+        study = open_study(store, name, sampler_seed=sampler_seed, pruner=job.search.pruner)
+        constants = Constants.from_dict(study.user_attrs["constants"])
+        # Same space as the coordinator's: constants and probe points from the study.
+        vectors, _ = ws.problem.local_grads(np.asarray(study.user_attrs["probe_points"]))
+        space = Space(job.search, constants, target=ws.target, contraction_vectors=vectors)
+        objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
+                              max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
+                              seeds=search_seeds(job.search), worker=index)
+        return run_trials(study, objective, budget=budget)
+
+
+def _check_study(study: optuna.Study, job: Job) -> None:
+    if study.direction != optuna.study.StudyDirection.MINIMIZE:
+        raise InputError(f"storage: study {study.study_name!r} exists and maximises; bittune's studies minimise bits")
+    digest = study.user_attrs.get("job_digest")
+    if digest is None:
+        study.set_user_attr("job_digest", job.digest)
+    elif digest != job.digest:
+        raise InputError(f"storage: study {study.study_name!r} belongs to another job file "
+                         f"(digest {digest[:12]}, this job {job.digest[:12]})")
+
+
+def _config_doc(ws, job: Job, sel: Selection, constants, name: str, storage: str, spec) -> dict:
+    w, b = sel.winner.summary(), sel.baseline.summary()
+    doc = {"bittune_config": 1, **sel.winner.candidate.to_config(),
+           "problem": {"dimension": int(ws.problem.dim), "workers": int(ws.problem.n_workers)}}
+    doc["expected"] = {
+        "validation_seeds": sel.seeds,
+        "reached_all": bool(sel.all_reached),
+        "mean_bits_per_worker": w["mean_bits_per_worker"], "std_bits_per_worker": w["std_bits_per_worker"],
+        "mean_rounds": w["mean_rounds"], "std_rounds": w["std_rounds"],
+        "bits_per_worker": w["bits_per_worker"], "rounds": w["rounds"],
+        "theory_baseline": {k: b[k] for k in ("method", "compressor", "step_size", "sync_probability",
+                                               "shift_rate", "reached", "mean_bits_per_worker",
+                                               "std_bits_per_worker", "mean_rounds")},
+        "gain_over_theory": float(sel.gain()),
+        "gain_is_lower_bound": not sel.baseline.all_reached,
+        "target_grad_norm_sq": float(ws.target),
+    }
+    if not sel.all_reached:
+        doc["best_effort"] = True
+    c = constants.to_dict()
+    doc["constants"] = {k: c[k] for k in ("L", "L_am", "L_qm", "L_max", "L_plus", "L_pm", "delta0",
+                                          "grad_sq0", "heterogeneity0", "safety", "L_workers")}
+    data_path = job.data.path
+    doc["provenance"] = {
+        "bittune": __version__, "optuna": optuna.__version__,
+        "time_utc": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "job": str(job.path), "job_sha256": job.digest,
+        "data": str(data_path), "data_sha256": hashlib.sha256(Path(data_path).read_bytes()).hexdigest(),
+        "study": name, "storage": _mask(storage), "seed": int(spec.seed), "trials": int(spec.trials),
+        "search_seeds": search_seeds(spec),
+    }
+    return _plain(doc)
+
+
+def _mask(url: str) -> str:
+    """Hide a password in a database URL."""
+    if "://" in url and "@" in url:
+        head, tail = url.split("://", 1)
+        cred, host = tail.rsplit("@", 1)
+        if ":" in cred:
+            cred = cred.split(":", 1)[0] + ":***"
+        return f"{head}://{cred}@{host}"
+    return url
+
+
+def _plain(doc):
+    if isinstance(doc, dict):
+        return {k: _plain(v) for k, v in doc.items()}
+    if isinstance(doc, (list, tuple)):
+        return [_plain(v) for v in doc]
+    if isinstance(doc, (np.floating, np.integer, np.bool_)):
+        return doc.item()
+    return doc
+
+
+class _Progress:
+    """Progress on stderr: one rewritten line on a terminal, plain lines otherwise."""
+
+    def __init__(self, total: int, stream=None):
+        self.total = total
+        self.stream = stream or sys.stderr
+        self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self.start = time.monotonic()
+        self._last_line = 0.0
+        self._open = False
+
+    def note(self, text: str) -> None:
+        if self._open:
+            self.stream.write("\n")
+            self._open = False
+        self.stream.write(f"[bittune] {text}\n")
+        self.stream.flush()
+
+    def trials(self, done: int, best: float | None, pruned: int, failed: int) -> None:
+        elapsed = time.monotonic() - self.start
+        best_txt = f"{best:,.0f} bits/worker" if best is not None and math.isfinite(best) else "none yet"
+        line = (f"[bittune] trials {done}/{self.total} (pruned {pruned}, failed {failed}), "
+                f"best {best_txt}, {elapsed:.0f} s")
+        if self.tty:
+            self.stream.write("\r" + line + " " * 8)
+            self._open = True
+        elif time.monotonic() - self._last_line >= 10.0 or done >= self.total:
+            self.stream.write(line + "\n")
+            self._last_line = time.monotonic()
+        self.stream.flush()
+
+
+class _Watcher(threading.Thread):
+    """Polls the study and reports progress while trials run (in this or other processes)."""
+
+    def __init__(self, study, log, total: int, interval: float = 1.0):
+        super().__init__(daemon=True)
+        self.study, self.log, self.total, self.interval = study, log, total, interval
+        self._stop_event = threading.Event()
+        self._last = None
+
+    def run(self) -> None:
+        while not self._stop_event.wait(self.interval):
+            self._poll()
+
+    def stop(self) -> None:
+        self._stop_event.set()
+        self.join()
+        self._poll()
+
+    def _poll(self) -> None:
+        try:
+            trials = self.study.get_trials(deepcopy=False)
+        except Exception:  # a storage hiccup must not kill the run; the next poll retries
+            return
+        done = sum(t.state in (TrialState.COMPLETE, TrialState.PRUNED) for t in trials)
+        pruned = sum(t.state == TrialState.PRUNED for t in trials)
+        failed = sum(t.state == TrialState.FAIL for t in trials)
+        values = [t.value for t in trials if t.state == TrialState.COMPLETE
+                  and t.user_attrs.get("reached") == len(t.user_attrs.get("status", [None]))]
+        best = min(values) if values else None
+        state = (done, best, pruned, failed)
+        if state != self._last:
+            self._last = state
+            self.log.trials(done, best, pruned, failed)
