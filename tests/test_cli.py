@@ -60,7 +60,11 @@ def test_replay_is_reproducible(demo, capsys):
 
 def test_bad_config_exits_2_naming_the_key(demo, tmp_path, capsys):
     bad = tmp_path / "bad.yaml"
-    bad.write_text((demo / "config.yaml").read_text().replace("step_size: 1.0", "step_size: -1"))
+    import re
+
+    text = re.sub(r"(?m)^step_size: .*$", "step_size: -1", (demo / "config.yaml").read_text())
+    assert "step_size: -1" in text
+    bad.write_text(text)
     code = main(["replay", str(bad), "--job", str(demo / "job.yaml"), "--json"])
     captured = capsys.readouterr()
     assert code == 2
