@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: install demo test bench clean
+.PHONY: install demo test bench bench-tuning clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -26,5 +26,8 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(PY) benchmarks/engine.py
 
+bench-tuning: $(STAMP)
+	$(PY) benchmarks/tuning.py
+
 clean:
-	rm -rf $(VENV) build src/*.egg-info .pytest_cache
+	rm -rf $(VENV) build src/*.egg-info .pytest_cache runs
