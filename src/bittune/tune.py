@@ -120,6 +120,8 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     selection = select(ws, space, study)
     config = _config_doc(ws, job, selection, constants, name, storage_url, spec)
     write_config(output, config)
+    write_summary(run_dir, ws=ws, job=job, output=output, constants=constants, report=report, space=space,
+                  selection=selection, study=name, storage=storage_url)
     counts = {s.name.lower(): len(study.get_trials(deepcopy=False, states=(s,)))
               for s in (TrialState.COMPLETE, TrialState.PRUNED, TrialState.FAIL)}
     code = EXIT["ok"] if selection.all_reached else EXIT["no_candidate"]
@@ -155,6 +157,63 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int, sampler
                               max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                               seeds=search_seeds(job.search), worker=index)
         return run_trials(study, objective, budget=budget)
+
+
+SUMMARY = "summary.json"
+#: Curves in the summary keep at most this many points per seed (thinned evenly, ends kept).
+CURVE_POINTS = 400
+
+
+def write_summary(run_dir: Path, *, ws, job: Job, output: Path, constants, report, space, selection: Selection,
+                  study: str, storage: str) -> Path:
+    """Everything the report needs that is not in the study: one JSON file in the run folder."""
+    import json
+
+    from ._yaml import atomic_write_text
+    def curves(evaluation):
+        out = []
+        for r in evaluation.runs:
+            keep = np.unique(np.linspace(0, len(r.grad_norm_sq) - 1, min(CURVE_POINTS, len(r.grad_norm_sq)))
+                             .round().astype(int))
+            out.append({"seed": r.seed, "status": r.status, "rounds": keep.tolist(),
+                        "uplink_bits": r.uplink_curve[keep].tolist(), "grad_norm_sq": r.grad_norm_sq[keep].tolist()})
+        return out
+
+    rows = []
+    for method in space.methods:
+        for name in space.compressors[method]:
+            dp = space._density_param(name)
+            if dp is None:
+                comps = [{"name": name}]
+            else:
+                pname, lo, hi = dp
+                grid = np.unique(np.round(np.geomspace(lo, hi, 6)).astype(int))
+                comps = [{"name": name, pname.split(".")[1]: int(v)} for v in grid]
+            for comp in comps:
+                rows.append(space.theory(method, comp).to_dict())
+    gc = report.gradient_check
+    doc = {
+        "bittune_summary": 1,
+        "job": str(job.path), "config": str(Path(output).absolute()), "study": study, "storage": storage,
+        "problem": ws.summary(), "target_grad_norm_sq": float(ws.target),
+        "constants": constants.to_dict(),
+        "probe": {"max_rel_error": gc.max_rel_error, "passed": gc.passed, "tolerance": gc.threshold,
+                  "oracle_calls": report.oracle_calls, "seconds": report.seconds},
+        "theory": rows,
+        "search": {"methods": list(space.methods), "seeds": search_seeds(job.search),
+                   "step_range": list(job.search.step_range), "trials": job.search.trials},
+        "selection": {
+            "seeds": selection.seeds,
+            "winner": selection.winner.summary(), "baseline": selection.baseline.summary(),
+            "finalists": [e.summary() for e in selection.finalists],
+            "backoff": [e.summary() for e in selection.backoff],
+            "gain_over_theory": selection.gain(), "all_reached": selection.all_reached,
+        },
+        "curves": {"winner": curves(selection.winner), "baseline": curves(selection.baseline)},
+    }
+    path = Path(run_dir) / SUMMARY
+    atomic_write_text(path, json.dumps(_plain(doc), indent=1, allow_nan=True))
+    return path
 
 
 def _check_study(study: optuna.Study, job: Job) -> None:
