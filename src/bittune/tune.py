@@ -66,7 +66,6 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
         job = replace(job, search=spec)
     output = Path(output)
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
-    run_dir.mkdir(parents=True, exist_ok=True)
     storage_url = storage or str(run_dir / "study.journal")
     log = progress or _Progress(total=spec.trials)
 
@@ -80,6 +79,8 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     vectors, _ = ws.problem.local_grads(report.points)
     space = Space(spec, constants, target=ws.target, contraction_vectors=vectors)
 
+    # Inputs are valid and the model passed its check: only now touch the disk.
+    run_dir.mkdir(parents=True, exist_ok=True)
     name = study_name(job)
     store = open_storage(storage_url)
     study = optuna.create_study(study_name=name, storage=store, direction="minimize", load_if_exists=True)
