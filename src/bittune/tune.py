@@ -45,30 +45,44 @@ class TuneResult:
     trials: dict
 
 
+def data_digest(job: Job) -> str:
+    """sha256 of the job's data file."""
+    return hashlib.sha256(Path(job.data.path).read_bytes()).hexdigest()
+
+
 def study_name(job: Job) -> str:
-    return f"bittune-{job.digest[:16]}"
+    """A study belongs to one job file and one data file."""
+    return f"bittune-{job.digest[:10]}-{data_digest(job)[:10]}"
 
 
-def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None, seed: int | None = None,
-         run_dir=None, storage: str | None = None, progress=None) -> TuneResult:
-    """Tune the job and write the config to ``output``; returns what was written and why."""
-    optuna.logging.set_verbosity(optuna.logging.WARNING)  # our own progress lines instead
-    job = load_job(job_path)
-    spec = job.search
-    overrides = {k: v for k, v in (("trials", trials), ("jobs", jobs), ("seed", seed)) if v is not None}
-    for key, value in overrides.items():
-        if value < (0 if key == "seed" else 1):
+@dataclass
+class Prepared:
+    """The stages before the search: job, problem, probe, theory-relative space."""
+
+    job: Job
+    ws: object
+    constants: object
+    report: object
+    space: Space
+    overrides: dict
+
+
+def apply_overrides(job: Job, overrides: dict) -> Job:
+    """Command-line and retune changes to the job's search settings."""
+    from dataclasses import replace
+
+    for key in ("trials", "jobs", "seed"):
+        value = overrides.get(key)
+        if value is not None and value < (0 if key == "seed" else 1):
             raise InputError(f"--{key}: must be an integer >= {0 if key == 'seed' else 1}, got {value}")
-    if overrides:
-        from dataclasses import replace
+    return replace(job, search=replace(job.search, **overrides)) if overrides else job
 
-        spec = replace(spec, **overrides)
-        job = replace(job, search=spec)
-    output = Path(output)
-    run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
-    storage_url = storage or str(run_dir / "study.journal")
-    log = progress or _Progress(total=spec.trials)
 
+def prepare(job_path, overrides: dict, log) -> Prepared:
+    """Load the job, build the problem, run the probe (exit 3 on a bad gradient), build the space."""
+    optuna.logging.set_verbosity(optuna.logging.WARNING)  # our own progress lines instead
+    overrides = {k: v for k, v in overrides.items() if v is not None}
+    job = apply_overrides(load_job(job_path), overrides)
     ws = open_job(job)
     log.note(f"problem: {ws.problem.n_workers} workers, d = {ws.problem.dim}, "
              f"{int(ws.problem.worker_sizes.sum())} samples; target ||grad f||^2 <= {ws.target:.3g}")
@@ -77,8 +91,13 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
              f"L = {constants.L:.4g}, L_qm = {constants.L_qm:.4g}, L_pm = {constants.L_pm:.4g} "
              f"({report.oracle_calls} oracle calls, {report.seconds:.1f} s)")
     vectors, _ = ws.problem.local_grads(report.points)
-    space = Space(spec, constants, target=ws.target, contraction_vectors=vectors)
+    space = Space(job.search, constants, target=ws.target, contraction_vectors=vectors)
+    return Prepared(job, ws, constants, report, space, overrides)
 
+
+def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: list[dict] | None = None):
+    """Create or resume the study, enqueue warm-start and theory seeds, run the trials; returns the study."""
+    job, spec, space = prep.job, prep.job.search, prep.space
     # Inputs are valid and the model passed its check: only now touch the disk.
     run_dir.mkdir(parents=True, exist_ok=True)
     name = study_name(job)
@@ -88,14 +107,18 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     stale = fail_stale_trials(study)
     if stale:
         log.note(f"resume: {stale} trial(s) left running by a stopped run marked failed")
+    if not study.user_attrs.get("seeded"):
+        for params in warm or []:
+            study.enqueue_trial(params, user_attrs={"warm_start": True})
     seeded = enqueue_seeds(study, space)
     if seeded:
-        log.note(f"search: {seeded} theory seed points enqueued; {spec.trials} trials, {spec.jobs} process(es)")
+        log.note(f"search: {len(warm or [])} warm-start and {seeded} theory seed points enqueued; "
+                 f"{spec.trials} trials, {spec.jobs} process(es)")
     else:
         done = len(study.get_trials(deepcopy=False, states=COUNTED))
         log.note(f"resume: {done} trial(s) already done of {spec.trials}")
-    study.set_user_attr("constants", _plain(constants.to_dict()))
-    study.set_user_attr("probe_points", _plain(report.points.tolist()))
+    study.set_user_attr("constants", _plain(prep.constants.to_dict()))
+    study.set_user_attr("probe_points", _plain(prep.report.points.tolist()))
 
     seeds = np.random.SeedSequence(spec.seed).spawn(spec.jobs)
     sampler_seeds = [int(s.generate_state(1)[0]) for s in seeds]
@@ -103,6 +126,7 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     watcher.start()
     try:
         if spec.jobs == 1:
+            ws = prep.ws
             objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                                   max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                                   seeds=search_seeds(spec), worker=0)
@@ -112,30 +136,44 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
             from joblib import Parallel, delayed
 
             Parallel(n_jobs=spec.jobs, backend="loky")(
-                delayed(worker_main)(str(job.path), storage_url, name, spec.trials, sampler_seeds[i], i, overrides)
+                delayed(worker_main)(str(job.path), storage_url, name, spec.trials, sampler_seeds[i], i,
+                                     prep.overrides)
                 for i in range(spec.jobs))
     finally:
         watcher.stop()
+    return study
 
+
+def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None, seed: int | None = None,
+         run_dir=None, storage: str | None = None, progress=None) -> TuneResult:
+    """Tune the job and write the config to ``output``; returns what was written and why."""
+    output = Path(output)
+    run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
+    storage_url = storage or str(run_dir / "study.journal")
+    job0 = load_job(job_path)
+    log = progress or _Progress(total=trials or job0.search.trials)
+    prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log)
+    study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log)
     log.note("select: validating the best candidates on fresh seeds")
-    selection = select(ws, space, study)
-    config = _config_doc(ws, job, selection, constants, name, storage_url, spec)
+    selection = select(prep.ws, prep.space, study)
+    config = _config_doc(prep, selection, study.study_name, storage_url)
     write_config(output, config)
-    write_summary(run_dir, ws=ws, job=job, output=output, constants=constants, report=report, space=space,
-                  selection=selection, study=name, storage=storage_url)
-    counts = {s.name.lower(): len(study.get_trials(deepcopy=False, states=(s,)))
-              for s in (TrialState.COMPLETE, TrialState.PRUNED, TrialState.FAIL)}
+    write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
+                  storage=storage_url)
     code = EXIT["ok"] if selection.all_reached else EXIT["no_candidate"]
     log.note(f"wrote {output}" + ("" if selection.all_reached else " (best effort: no candidate reached the "
                                                                      "target on every fresh seed)"))
-    return TuneResult(code, config, selection, name, storage_url, counts)
+    return TuneResult(code, config, selection, study.study_name, storage_url, trial_counts(study))
+
+
+def trial_counts(study) -> dict:
+    return {s.name.lower(): len(study.get_trials(deepcopy=False, states=(s,)))
+            for s in (TrialState.COMPLETE, TrialState.PRUNED, TrialState.FAIL)}
 
 
 def worker_main(job_path: str, storage_url: str, name: str, budget: int, sampler_seed: int, index: int,
                 overrides: dict) -> int:
     """One worker process: rebuild the problem, read the probe's constants from the study, run trials."""
-    from dataclasses import replace
-
     from threadpoolctl import threadpool_limits
 
     from .constants import Constants
@@ -144,9 +182,7 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int, sampler
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     _shards.set_threads(1)  # the processes already fill the cores
     with threadpool_limits(1):
-        job = load_job(job_path)
-        if overrides:
-            job = replace(job, search=replace(job.search, **overrides))
+        job = apply_overrides(load_job(job_path), overrides)
         ws = open_job(job)
         store = open_storage(storage_url)
         study = open_study(store, name, sampler_seed=sampler_seed, pruner=job.search.pruner)
@@ -165,12 +201,15 @@ SUMMARY = "summary.json"
 CURVE_POINTS = 400
 
 
-def write_summary(run_dir: Path, *, ws, job: Job, output: Path, constants, report, space, selection: Selection,
-                  study: str, storage: str) -> Path:
+def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Selection, study: str,
+                  storage: str, extra: dict | None = None) -> Path:
     """Everything the report needs that is not in the study: one JSON file in the run folder."""
     import json
 
     from ._yaml import atomic_write_text
+
+    ws, job, constants, report, space = prep.ws, prep.job, prep.constants, prep.report, prep.space
+
     def curves(evaluation):
         out = []
         for r in evaluation.runs:
@@ -211,6 +250,7 @@ def write_summary(run_dir: Path, *, ws, job: Job, output: Path, constants, repor
             "gain_over_theory": selection.gain(), "all_reached": selection.all_reached,
         },
         "curves": {"winner": curves(selection.winner), "baseline": curves(selection.baseline)},
+        **(extra or {}),
     }
     path = Path(run_dir) / SUMMARY
     atomic_write_text(path, json.dumps(_plain(doc), indent=1, allow_nan=True))
@@ -228,7 +268,8 @@ def _check_study(study: optuna.Study, job: Job) -> None:
                          f"(digest {digest[:12]}, this job {job.digest[:12]})")
 
 
-def _config_doc(ws, job: Job, sel: Selection, constants, name: str, storage: str, spec) -> dict:
+def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str) -> dict:
+    ws, job, constants, spec = prep.ws, prep.job, prep.constants, prep.job.search
     w, b = sel.winner.summary(), sel.baseline.summary()
     doc = {"bittune_config": 1, **sel.winner.candidate.to_config(),
            "problem": {"dimension": int(ws.problem.dim), "workers": int(ws.problem.n_workers)}}
@@ -250,12 +291,14 @@ def _config_doc(ws, job: Job, sel: Selection, constants, name: str, storage: str
     c = constants.to_dict()
     doc["constants"] = {k: c[k] for k in ("L", "L_am", "L_qm", "L_max", "L_plus", "L_pm", "delta0",
                                           "grad_sq0", "heterogeneity0", "safety", "L_workers")}
+    doc["constants"]["samples"] = int(ws.problem.worker_sizes.sum())
+    doc["constants"]["worker_samples"] = [int(v) for v in ws.problem.worker_sizes]
     data_path = job.data.path
     doc["provenance"] = {
         "bittune": __version__, "optuna": optuna.__version__,
         "time_utc": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "job": str(job.path), "job_sha256": job.digest,
-        "data": str(data_path), "data_sha256": hashlib.sha256(Path(data_path).read_bytes()).hexdigest(),
+        "data": str(data_path), "data_sha256": data_digest(job),
         "study": name, "storage": _mask(storage), "seed": int(spec.seed), "trials": int(spec.trials),
         "search_seeds": search_seeds(spec),
     }
