@@ -15,7 +15,7 @@ soil temperature (degrees C), pressure change (hPa), snow cover flag,
 elevation (km) and slope aspect of the station, 12 month indicators and 12
 weather-type indicators (one-hot, so the file is sparse).
 
-    python make_data.py --out stations.svm [--nights 600] [--seed 7] [--drift 0.0]
+    python make_data.py --out stations.svm [--nights 600] [--seed 7] [--drift 0.0] [--scale 1.0]
 """
 
 from __future__ import annotations
@@ -101,8 +101,11 @@ def main() -> int:
     ap.add_argument("--nights", type=int, default=600)
     ap.add_argument("--seed", type=int, default=7)
     ap.add_argument("--drift", type=float, default=0.0, help="warm every evening by this many degrees")
+    ap.add_argument("--scale", type=float, default=1.0,
+                    help="multiply every reading by this factor (a firmware update that changes units)")
     args = ap.parse_args()
     X, y = generate(nights=args.nights, seed=args.seed, drift=args.drift)
+    X = X * args.scale
     write_svmlight(args.out, X, y)
     print(f"wrote {args.out} ({X.shape[0]} nights x {X.shape[1]} features, {y.mean():.0%} frost)")
     return 0

@@ -189,6 +189,48 @@ def _cmd_tune(args: argparse.Namespace) -> int:
     return result.exit_code
 
 
+def _cmd_retune(args: argparse.Namespace) -> int:
+    from .retune import retune
+
+    result = retune(args.job, previous=args.previous, output=args.output, trials=args.trials, jobs=args.jobs,
+                    seed=args.seed, run_dir=args.run_dir, storage=args.storage, history=args.history,
+                    margin=args.margin, level=args.level, drift_threshold=args.drift_threshold)
+    section = result.config["retune"]
+    if args.json:
+        _emit_json({"decision": result.decision, "exit_code": result.exit_code, "reason": section["reason"],
+                    "written": None if result.written is None else str(result.written),
+                    "p_value": section["p_value"], "drift": section["drift"], "new": section["new"],
+                    "previous": section["previous"], "trials": section["trials"]})
+        return result.exit_code
+    print(f"{'quantity':<40} {'previous':>12} {'tonight':>12} {'ratio':>8}")
+    for row in result.drift:
+        print(f"{row['quantity']:<40} {row['previous']:>12.4g} {row['current']:>12.4g} {row['ratio']:>8.3f}")
+    new, old = section["new"], section["previous"]
+    print(f"tonight's best: {new['method']} + {new['compressor']}, step {new['step_size']:.4g}: "
+          f"{new['mean_bits_per_worker']:,.0f} bits/worker, reached {new['reached']}/{new['seeds']}")
+    if old:
+        print(f"previous config: {old['method']} + {old['compressor']}, step {old['step_size']:.4g}: "
+              f"{old['mean_bits_per_worker']:,.0f} bits/worker, reached {old['reached']}/{old['seeds']}")
+    print(f"decision: {result.decision} ({section['reason']})")
+    print(f"config: {result.written}" if result.written else "config: not written (the previous file is kept)")
+    return result.exit_code
+
+
+def _cmd_history(args: argparse.Namespace) -> int:
+    from .retune import history_rows
+
+    rows = history_rows(args.folder)
+    if args.json:
+        _emit_json({"nights": rows})
+        return EXIT["ok"]
+    print(f"{'night (UTC)':<21} {'decision':<9} {'method':<7} {'compressor':<11} {'step':>10} {'bits/worker':>12}")
+    for r in rows:
+        bits = r.get("bits_per_worker")
+        print(f"{r['night']:<21} {r['decision']:<9} {r['method']:<7} {r['compressor']:<11} {r['step_size']:>10.4g} "
+              f"{'' if bits is None else f'{bits:,.0f}':>12}")
+    return EXIT["ok"]
+
+
 def _label(spec: dict) -> str:
     return ":".join([spec["name"], *(str(v) for k, v in spec.items() if k != "name")])
 
@@ -227,6 +269,30 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--storage", help="Optuna storage URL (default: a journal file in the run folder)")
     p.add_argument("--json", action="store_true", help="print one JSON summary document on stdout")
     p.set_defaults(func=_cmd_tune)
+
+    p = sub.add_parser("retune", help="nightly: retune on fresh data against the config in use")
+    p.add_argument("job", help="job file (YAML) pointing at tonight's data")
+    p.add_argument("--previous", required=True, help="the config in use")
+    p.add_argument("-o", "--output", required=True,
+                   help="config to write (a replacement, or the previous config with tonight's evidence; "
+                        "when it equals --previous it is written only on replacement)")
+    p.add_argument("--trials", type=_positive_int, help="trial budget (default: a third of search.trials, >= 10)")
+    p.add_argument("--jobs", type=_positive_int, help="parallel processes (overrides search.jobs)")
+    p.add_argument("--seed", type=_nonneg_int, help="search seed (overrides search.seed)")
+    p.add_argument("--run-dir", help="folder for the study storage (default: beside the output, NAME.run)")
+    p.add_argument("--storage", help="Optuna storage URL (default: a journal file in the run folder)")
+    p.add_argument("--history", help="folder that keeps every night's config and summary")
+    p.add_argument("--margin", type=float, default=0.03, help="bits saving needed to replace (default 0.03)")
+    p.add_argument("--level", type=float, default=0.05, help="significance level of the paired test (default 0.05)")
+    p.add_argument("--drift-threshold", type=float, default=0.5,
+                   help="largest relative change of a constant still called small drift (default 0.5)")
+    p.add_argument("--json", action="store_true", help="print one JSON summary document on stdout")
+    p.set_defaults(func=_cmd_retune)
+
+    p = sub.add_parser("history", help="the nights recorded by retune --history")
+    p.add_argument("folder", help="history folder")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.set_defaults(func=_cmd_history)
 
     p = sub.add_parser("probe", help="gradient check and smoothness constants of a job's problem")
     p.add_argument("job", help="job file (YAML)")

@@ -35,7 +35,7 @@ from .theory import measured_contraction, theory_point
 
 __all__ = [
     "Candidate", "Space", "Objective", "score", "open_storage", "open_study", "enqueue_seeds",
-    "fail_stale_trials", "run_trials", "search_seeds", "COUNTED",
+    "fail_stale_trials", "run_trials", "search_seeds", "stall_window", "COUNTED",
 ]
 
 #: Trial states that count against the global budget.
@@ -237,6 +237,13 @@ def _clip(value: float, bounds: tuple) -> float:
 
 
 # -------------------------------------------------------------------- objective
+def stall_window(method: str, sync_probability=None):
+    """Rounds without progress before a trajectory counts as stalled: 100, MARINA max(100, 10/p)."""
+    if method == "marina" and sync_probability is not None:
+        return np.maximum(STALL_ROUNDS, 10.0 / np.asarray(sync_probability, dtype=np.float64))
+    return STALL_ROUNDS
+
+
 def search_seeds(spec) -> list[int]:
     """The common random seeds every trial uses."""
     return [spec.seed * 1000 + j for j in range(spec.seeds)]
@@ -284,8 +291,7 @@ class Objective:
         trial.set_user_attr("candidate", _plain(cand.to_config()))
         cap = self._cap(trial.study)
         comp = make_compressor(cand.compressor, self.problem.dim)
-        p = cand.sync_probability or 1.0
-        window = max(STALL_ROUNDS, 10.0 / p) if cand.method == "marina" else STALL_ROUNDS
+        window = stall_window(cand.method, cand.sync_probability)
         monitor = _PruneMonitor(trial, len(self.seeds), self.target, start_bits=32.0 * self.problem.dim * 4)
         runs = simulate(self.problem, method=cand.method, compressor=comp, step_size=cand.step_size,
                         seeds=self.seeds, target=self.target, max_rounds=self.max_rounds, x0=self.x0,

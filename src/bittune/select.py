@@ -19,7 +19,7 @@ import numpy as np
 from optuna.trial import TrialState
 
 from .compressors import make_compressor
-from .search import Candidate, Space
+from .search import Candidate, Space, stall_window
 from .simulate import Trajectory, simulate
 
 __all__ = ["Evaluation", "Selection", "validation_seeds", "evaluate", "select"]
@@ -109,7 +109,8 @@ def evaluate(ws, candidates: list[Candidate], seeds: list[int]) -> list[Evaluati
         runs = simulate(ws.problem, method=first.method, compressor=make_compressor(first.compressor, ws.problem.dim),
                         step_size=steps, seeds=np.tile(seeds, len(idx)), target=ws.target,
                         max_rounds=job.budget.max_rounds, x0=ws.x0, params=params,
-                        max_bits_per_worker=job.budget.max_bits_per_worker)
+                        max_bits_per_worker=job.budget.max_bits_per_worker,
+                        stall_window=stall_window(first.method, params.get("sync_probability")))
         for j, i in enumerate(idx):
             out[i] = Evaluation(candidates[i], runs[j * S:(j + 1) * S])
     return out

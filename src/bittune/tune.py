@@ -95,6 +95,15 @@ def prepare(job_path, overrides: dict, log) -> Prepared:
     return Prepared(job, ws, constants, report, space, overrides)
 
 
+def respace(prep: Prepared, overrides: dict) -> Prepared:
+    """The same problem and probe with other search settings (no second probe)."""
+    overrides = {**prep.overrides, **{k: v for k, v in overrides.items() if v is not None}}
+    job = apply_overrides(prep.job, overrides)
+    vectors, _ = prep.ws.problem.local_grads(prep.report.points)
+    space = Space(job.search, prep.constants, target=prep.ws.target, contraction_vectors=vectors)
+    return Prepared(job, prep.ws, prep.constants, prep.report, space, overrides)
+
+
 def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: list[dict] | None = None):
     """Create or resume the study, enqueue warm-start and theory seeds, run the trials; returns the study."""
     job, spec, space = prep.job, prep.job.search, prep.space
