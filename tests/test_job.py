@@ -234,8 +234,10 @@ ERRORS = [
     (dict(modle="least_squares"), "modle: unknown key (did you mean 'model'?)"),
     (dict(probe={"safety": 0.5}), "probe.safety: must be a number >= 1, got 0.5"),
     (dict(probe={"runs": 0}), "probe.runs: must be an integer >= 1, got 0"),
-    (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, data, workers, target, "
-                  "budget, probe, search, start)"),
+    (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, objective, data, workers, "
+                  "target, budget, network, probe, search, start)"),
+    (dict(objective="joules"), "objective: must be one of bits, seconds, got 'joules'"),
+    (dict(network={"uplink_bandwidth": 0}), "network.uplink_bandwidth: must be a number > 0, got 0"),
     (dict(search={"methods": ["marina", "sgd"]}),
      "search.methods: must be a list of distinct values from gd, dcgd, diana, marina, ef21, got ['marina', 'sgd']"),
     (dict(search={"step_range": [8, 2]}),

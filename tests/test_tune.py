@@ -209,3 +209,34 @@ def test_killed_run_resumes_without_losing_trials(frost, tmp_path):
     finished = [t for t in after.values() if t.state in (TrialState.COMPLETE, TrialState.PRUNED)]
     assert len(finished) == 40
     assert yaml.safe_load(out.read_text())["bittune_config"] == 1
+
+
+@pytest.mark.slow
+def test_seconds_objective_follows_the_network(tmp_path):
+    """Fast links favour few rounds (dense GD); a slow metered uplink favours compressed messages."""
+    data = tmp_path / "st.svm"
+    subprocess.run([sys.executable, str(ROOT / "examples/frost/make_data.py"), "--out", str(data), "--nights",
+                    "300"], check=True, capture_output=True)
+    chosen = {}
+    for name, up in (("fast", 1e12), ("metered", 1e3)):
+        job = tmp_path / f"{name}.yaml"
+        job.write_text(f"""
+data: st.svm
+model: logistic_nonconvex
+regularization: 0.01
+objective: seconds
+network: {{latency: 0.01, uplink_bandwidth: {up}, downlink_bandwidth: 1e12, compute_seconds: 0.001}}
+workers: {{count: 12, split: dirichlet, seed: 0}}
+target: {{grad_norm_sq: 1e-4, relative: true}}
+budget: {{max_rounds: 4000}}
+search: {{methods: [gd, diana], compressors: [dither], trials: 30, seeds: 2}}
+""")
+        result = tune(job, output=tmp_path / f"{name}-config.yaml", progress=_Quiet())
+        cfg = result.config
+        assert cfg["expected"]["objective"] == "seconds" and cfg["expected"]["mean_seconds"] > 0
+        # Seconds = rounds (compute + latency) + bits / bandwidth (our network model, cost.py).
+        e = cfg["expected"]
+        assert e["mean_seconds"] == pytest.approx(e["mean_rounds"] * 0.011 + e["mean_bits_per_worker"] / up
+                                                  + e["mean_rounds"] * 32 * 38 / 1e12, rel=1e-9)
+        chosen[name] = cfg["method"]
+    assert chosen == {"fast": "gd", "metered": "diana"}

@@ -165,7 +165,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
     from .tune import tune
 
     result = tune(args.job, output=args.output, trials=args.trials, jobs=args.jobs, seed=args.seed,
-                  run_dir=args.run_dir, storage=args.storage)
+                  run_dir=args.run_dir, storage=args.storage, report_dir=args.report)
     cfg, exp = result.config, result.config["expected"]
     if args.json:
         _emit_json({"config": str(args.output), "exit_code": result.exit_code, "study": result.study_name,
@@ -185,8 +185,24 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         print(f"theory baseline ({base['method']} + {base['compressor']}): {base['mean_bits_per_worker']:,.0f} "
               f"bits/worker, reached on {base['reached']} of {len(exp['validation_seeds'])} seeds; "
               f"gain {exp['gain_over_theory']:.1f}x" + (" or more" if exp["gain_is_lower_bound"] else ""))
+        if exp.get("mean_seconds") is not None:
+            print(f"simulated wall clock: {exp['mean_seconds']:.4g} s to target (theory baseline "
+                  f"{base['mean_seconds']:.4g} s)")
         print(f"config: {args.output}")
+        print(f"report: {result.report['html']}")
     return result.exit_code
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from .report import write_report
+
+    paths = write_report(args.run_dir, out_dir=args.output)
+    if args.json:
+        _emit_json({k: str(v) for k, v in paths.items()})
+    else:
+        print(f"report: {paths['html']}")
+        print(f"summary: {paths['markdown']}")
+    return EXIT["ok"]
 
 
 def _cmd_retune(args: argparse.Namespace) -> int:
@@ -194,7 +210,8 @@ def _cmd_retune(args: argparse.Namespace) -> int:
 
     result = retune(args.job, previous=args.previous, output=args.output, trials=args.trials, jobs=args.jobs,
                     seed=args.seed, run_dir=args.run_dir, storage=args.storage, history=args.history,
-                    margin=args.margin, level=args.level, drift_threshold=args.drift_threshold)
+                    margin=args.margin, level=args.level, drift_threshold=args.drift_threshold,
+                    report_dir=args.report)
     section = result.config["retune"]
     if args.json:
         _emit_json({"decision": result.decision, "exit_code": result.exit_code, "reason": section["reason"],
@@ -267,8 +284,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=_nonneg_int, help="search seed (overrides search.seed)")
     p.add_argument("--run-dir", help="folder for the study storage (default: beside the output, NAME.run)")
     p.add_argument("--storage", help="Optuna storage URL (default: a journal file in the run folder)")
+    p.add_argument("--report", help="folder for the report (default: RUN_DIR/report)")
     p.add_argument("--json", action="store_true", help="print one JSON summary document on stdout")
     p.set_defaults(func=_cmd_tune)
+
+    p = sub.add_parser("report", help="rebuild the report of a finished run from its storage and summary")
+    p.add_argument("run_dir", help="the run folder (holds summary.json)")
+    p.add_argument("-o", "--output", help="report folder (default: RUN_DIR/report)")
+    p.add_argument("--json", action="store_true", help="print the written paths as one JSON document")
+    p.set_defaults(func=_cmd_report)
 
     p = sub.add_parser("retune", help="nightly: retune on fresh data against the config in use")
     p.add_argument("job", help="job file (YAML) pointing at tonight's data")
@@ -282,6 +306,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--run-dir", help="folder for the study storage (default: beside the output, NAME.run)")
     p.add_argument("--storage", help="Optuna storage URL (default: a journal file in the run folder)")
     p.add_argument("--history", help="folder that keeps every night's config and summary")
+    p.add_argument("--report", help="folder for the report (default: RUN_DIR/report)")
     p.add_argument("--margin", type=float, default=0.03, help="bits saving needed to replace (default 0.03)")
     p.add_argument("--level", type=float, default=0.05, help="significance level of the paired test (default 0.05)")
     p.add_argument("--drift-threshold", type=float, default=0.5,

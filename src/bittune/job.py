@@ -22,7 +22,7 @@ from bittune._yaml import REQUIRED, Param, check_mapping, parse_yaml, read_bytes
 from bittune.errors import InputError
 
 __all__ = [
-    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "Job",
+    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "NetworkSpec", "Job",
     "load_job", "parse_job", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
 ]
 
@@ -64,6 +64,14 @@ class TargetSpec:
 class BudgetSpec:
     max_rounds: int
     max_bits_per_worker: float | None
+
+
+@dataclass(frozen=True)
+class NetworkSpec:
+    latency: float
+    uplink_bandwidth: float
+    downlink_bandwidth: float
+    compute_seconds: float | None
 
 
 @dataclass(frozen=True)
@@ -119,6 +127,8 @@ class Job:
     start: StartSpec
     probe: ProbeSpec
     search: SearchSpec
+    objective: str
+    network: NetworkSpec
     raw: dict = field(repr=False)
     digest: str  # sha256 hex of the job file bytes
 
@@ -128,6 +138,7 @@ TOP = {
     "model": Param("choice", options=MODELS, default=REQUIRED),
     # the default depends on the model, filled in by parse_job
     "regularization": Param("real", low=0.0),
+    "objective": Param("choice", options=("bits", "seconds"), default="bits"),
 }
 
 #: Section name -> key -> constraint. Declare a new section here.
@@ -151,6 +162,12 @@ SECTIONS: dict[str, dict[str, Param]] = {
     "budget": {
         "max_rounds": Param("int", low=1, default=REQUIRED),
         "max_bits_per_worker": Param("real", low=0, closed="right"),
+    },
+    "network": {  # the objective "seconds"; defaults: a metered edge link (our choice, no source)
+        "latency": Param("real", low=0, default=0.05),
+        "uplink_bandwidth": Param("real", low=0, closed="right", default=1e6),
+        "downlink_bandwidth": Param("real", low=0, closed="right", default=1e7),
+        "compute_seconds": Param("real", low=0),  # default: measured by the probe
     },
     "probe": {
         "runs": Param("int", low=1, default=3),
@@ -197,6 +214,8 @@ _USED_ONLY_IF = {
     "workers.dirichlet_alpha": (lambda v: v["workers"].get("split") == "dirichlet",
                                 "workers.split is dirichlet"),
     "start.scale": (lambda v: v["start"].get("seed") is not None, "start.seed is set"),
+    **{f"network.{k}": (lambda v: v[""].get("objective") == "seconds", "objective is seconds")
+       for k in ("latency", "uplink_bandwidth", "downlink_bandwidth", "compute_seconds")},
 }
 
 
@@ -255,7 +274,8 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
         path=Path(source), data=data, model=top["model"], regularization=top["regularization"],
         workers=WorkersSpec(**values["workers"]), target=TargetSpec(**values["target"]),
         budget=BudgetSpec(**values["budget"]), start=start, probe=ProbeSpec(**values["probe"]),
-        search=SearchSpec(**values["search"]),
+        search=SearchSpec(**values["search"]), objective=top["objective"],
+        network=NetworkSpec(**values["network"]),
         raw=deepcopy(mapping), digest=digest,
     )
 

@@ -26,6 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from .config import Config, config_to_dict, load_config, write_config
+from .report import write_report
 from .errors import EXIT, InputError
 from .search import Candidate, open_storage
 from .select import Evaluation, evaluate, select
@@ -84,15 +85,17 @@ def decide(new: Evaluation, old: Evaluation, *, margin: float = MARGIN, level: f
         return "replaced", "the previous config no longer reaches the target on every fresh seed", math.nan
     if not new.all_reached:
         return "kept", "tonight's best does not reach the target on every fresh seed", math.nan
-    diff = new.bits - old.bits
+    unit = "bits" if new.network is None else "seconds"
+    diff = new.costs - old.costs
     if np.allclose(diff, diff[0]):  # no spread: the t statistic is undefined; the sign decides
         p = 0.0 if diff[0] < 0 else 1.0
     else:
-        p = float(stats.ttest_rel(new.bits, old.bits, alternative="less").pvalue)
-    gain = 1.0 - new.mean_bits / old.mean_bits
+        p = float(stats.ttest_rel(new.costs, old.costs, alternative="less").pvalue)
+    gain = 1.0 - new.mean_cost / old.mean_cost
     if gain > margin and p < level:
-        return "replaced", f"{gain:.1%} fewer bits (paired t-test p = {p:.3g} < {level})", p
-    return "kept", f"{gain:.1%} fewer bits is not enough (needs > {margin:.0%} and p < {level}; p = {p:.3g})", p
+        return "replaced", f"{gain:.1%} fewer {unit} (paired t-test p = {p:.3g} < {level})", p
+    return "kept", (f"{gain:.1%} fewer {unit} is not enough (needs > {margin:.0%} and p < {level}; "
+                    f"p = {p:.3g})"), p
 
 
 def _candidate(cfg: Config) -> Candidate:
@@ -170,7 +173,7 @@ def _narrowed(spec, cand: Candidate, space) -> dict:
 def retune(job_path, *, previous, output, trials: int | None = None, jobs: int | None = None,
            seed: int | None = None, run_dir=None, storage: str | None = None, history=None,
            margin: float = MARGIN, level: float = LEVEL, drift_threshold: float = DRIFT_THRESHOLD,
-           progress=None) -> RetuneResult:
+           report_dir=None, progress=None) -> RetuneResult:
     """Retune on tonight's data against the config in use; see the module docstring."""
     previous, output = Path(previous), Path(output)
     prev = load_config(previous)
@@ -205,14 +208,14 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
     warm = _warm_params(prep.space, warm_cands)
     study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, warm=warm)
     log.note("select: validating tonight's best and the previous config on the same fresh seeds")
-    selection = select(ws, prep.space, study)
+    selection = select(ws, prep.space, study, prep.network)
     if new_problem:
         decision, reason, p = ("replaced", "new problem (dimension or worker count changed)", math.nan)
         old_eval = None
         if not selection.all_reached:
             decision, reason = "failed", "new problem and no candidate reaches the target on every fresh seed"
     else:
-        old_eval = evaluate(ws, [prev_cand], selection.seeds)[0]
+        old_eval = evaluate(ws, [prev_cand], selection.seeds, prep.network)[0]
         decision, reason, p = decide(selection.winner, old_eval, margin=margin, level=level)
     section = {
         "decision": decision, "reason": reason, "p_value": None if math.isnan(p) else p,
@@ -235,6 +238,12 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
         written = output
     write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
                   storage=storage_url, extra={"retune": _plain(section)})
+    paths = write_report(run_dir, out_dir=report_dir, drift=_plain(drift), extra_sections=[{
+        "title": "Retune decision", "text": f"{decision}: {reason}",
+        "rows": [dict(configuration=k, **{f: (v or {}).get(f) for f in ("method", "compressor", "step_size",
+                                                                          "reached", "mean_bits_per_worker")})
+                 for k, v in (("tonight", section["new"]), ("previous", section["previous"]))]}])
+    log.note(f"report: {paths['html']}")
     if history is not None:
         _record_history(Path(history), doc, section)
     log.note(f"decision: {decision} ({reason})" + (f"; wrote {written}" if written else "; nothing written"))

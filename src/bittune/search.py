@@ -30,6 +30,7 @@ from optuna.trial import TrialState
 
 from .compressors import COMPRESSORS, make_compressor
 from .constants import Constants
+from .cost import cost_function
 from .simulate import Trajectory, simulate
 from .theory import measured_contraction, theory_point
 
@@ -44,7 +45,7 @@ COUNTED = (TrialState.COMPLETE, TrialState.PRUNED, TrialState.RUNNING)
 SEED_LADDER = (1.0, 2.0, 4.0, 16.0, 64.0, 256.0)
 #: Minimum stall window in rounds; MARINA's grows like 1/p (DESIGN.md measurements).
 STALL_ROUNDS = 100
-#: Bits between pruning checkpoints grow by this factor (common practice, no source).
+#: Cost between pruning checkpoints grows by this factor (common practice, no source).
 CHECKPOINT_GROWTH = 2.0
 
 
@@ -249,22 +250,25 @@ def search_seeds(spec) -> list[int]:
     return [spec.seed * 1000 + j for j in range(spec.seeds)]
 
 
-def score(runs: list[Trajectory], *, target: float, cap: float | None) -> tuple[float, list[float]]:
-    """Mean over seeds of: bits if reached; else a penalty growing with the distance to target.
+def score(runs: list[Trajectory], *, target: float, cap: float | None, cost=None) -> tuple[float, list[float]]:
+    """Mean over seeds of: the cost if reached; else a penalty growing with the distance to target.
 
-    Missed (budget, bit cap, stall, stop): max(bits, cap) x (2 + log10(best ||grad f||^2 / target)),
-    at least twice the cap. Diverged: twice that. (Our own rule: it keeps values finite and
+    The cost is uplink bits per worker unless ``cost`` (run -> float, e.g.
+    simulated seconds) is given. Missed (budget, bit cap, stall, stop):
+    max(cost, cap) x (2 + log10(best ||grad f||^2 / target)), at least twice
+    the cap. Diverged: twice that. (Our own rule: it keeps values finite and
     ordered, so the sampler still learns from failures; no source.)
     """
+    cost = cost or (lambda r: float(r.uplink_bits))
     values = []
     for r in runs:
         if r.reached:
-            values.append(r.uplink_bits)
+            values.append(cost(r))
             continue
         finite = r.grad_norm_sq[np.isfinite(r.grad_norm_sq)]
         best = float(finite.min()) if finite.size else math.inf
         distance = math.log10(best / target) if math.isfinite(best) and best > 0 else 12.0
-        base = max(r.uplink_bits, cap or 0.0, 1.0)
+        base = max(cost(r), cap or 0.0, 1e-9)
         v = base * (2.0 + max(distance, 0.0))
         values.append(2.0 * v if r.status == "diverged" else v)
     return float(np.mean(values)), values
@@ -282,6 +286,7 @@ class Objective:
     max_bits: float | None
     seeds: list[int]
     worker: int = 0
+    network: object = None  # a NetworkModel for the objective "seconds"; None: bits
     _best: float = field(default=math.inf, repr=False)
 
     def __call__(self, trial: optuna.Trial) -> float:
@@ -292,54 +297,72 @@ class Objective:
         cap = self._cap(trial.study)
         comp = make_compressor(cand.compressor, self.problem.dim)
         window = stall_window(cand.method, cand.sync_probability)
-        monitor = _PruneMonitor(trial, len(self.seeds), self.target, start_bits=32.0 * self.problem.dim * 4)
+        d = self.problem.dim
+        if self.network is None:
+            cost_at = lambda k, bits: bits  # noqa: E731
+        else:
+            net = self.network
+            cost_at = lambda k, bits: (k * (net.compute_seconds + net.latency + 32.0 * d / net.downlink_bandwidth)  # noqa: E731
+                                       + bits / net.uplink_bandwidth)
+        # Checkpoints start at the cost of four dense rounds and grow geometrically.
+        monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at,
+                                start=cost_at(4, 4 * 32.0 * d))
+        bits_cap = cap if self.network is None else self.max_bits
         runs = simulate(self.problem, method=cand.method, compressor=comp, step_size=cand.step_size,
                         seeds=self.seeds, target=self.target, max_rounds=self.max_rounds, x0=self.x0,
-                        params=cand.params(), max_bits_per_worker=cap, stall_window=window,
+                        params=cand.params(), max_bits_per_worker=bits_cap, stall_window=window,
                         monitor=monitor)
-        value, per_seed = score(runs, target=self.target, cap=cap)
+        value, per_seed = score(runs, target=self.target, cap=cap, cost=cost_function(self.network))
+        if self.network is not None:
+            trial.set_user_attr("seconds", [float(self.network.seconds(r)) for r in runs])
         trial.set_user_attr("status", [r.status for r in runs])
         trial.set_user_attr("bits", [float(r.uplink_bits) for r in runs])
         trial.set_user_attr("rounds", [int(r.rounds) for r in runs])
         trial.set_user_attr("reached", int(sum(r.reached for r in runs)))
         trial.set_user_attr("penalised", [float(v) for v, r in zip(per_seed, runs) if not r.reached])
-        trial.set_user_attr("bits_cap", cap)
+        trial.set_user_attr("cost_cap", cap)
         if monitor.pruned:
             raise optuna.TrialPruned(f"pruned at {monitor.step} bit checkpoints")
         return value
 
     def _cap(self, study: optuna.Study) -> float | None:
-        """Bit cap: bits_cap_factor x the best all-seeds-reached value so far (and the job's cap)."""
+        """Cost cap: bits_cap_factor x the best all-seeds-reached value so far (and the job's bit cap,
+        when the cost is bits)."""
         best = self._best
         for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
             if t.user_attrs.get("reached") == len(self.seeds) and t.value is not None:
                 best = min(best, t.value)
         self._best = best
-        caps = [c for c in (self.max_bits, self.space.spec.bits_cap_factor * best) if c is not None]
+        job_cap = self.max_bits if self.network is None else None
+        caps = [c for c in (job_cap, self.space.spec.bits_cap_factor * best) if c is not None]
         caps = [c for c in caps if math.isfinite(c)]
         return min(caps) if caps else None
 
 
 class _PruneMonitor:
-    """Reports mean log10(best ||grad f||^2 / target) over the seeds at geometric bit checkpoints."""
+    """Reports mean log10(best ||grad f||^2 / target) over the seeds at geometric cost checkpoints.
 
-    def __init__(self, trial, n_seeds: int, target: float, *, start_bits: float):
-        self.trial, self.target = trial, target
+    Trials are compared at equal cost (bits, or simulated seconds), the unit the
+    search minimises, so a pruner never judges cheap-per-round settings by rounds.
+    """
+
+    def __init__(self, trial, n_seeds: int, target: float, *, cost_at, start: float):
+        self.trial, self.target, self.cost_at = trial, target, cost_at
         self.best = np.full(n_seeds, np.inf)
-        self.next_bits = start_bits
+        self.next_cost = start
         self.step = 0
         self.pruned = False
 
     def __call__(self, k, index, bits, gn) -> bool:
         self.best[index] = np.minimum(self.best[index], np.where(np.isfinite(gn), gn, np.inf))
-        if bits.size == 0 or bits.mean() < self.next_bits:
+        if bits.size == 0 or self.cost_at(k, bits.mean()) < self.next_cost:
             return False
         with np.errstate(divide="ignore"):
             progress = np.log10(np.maximum(self.best, 1e-300) / self.target)
         value = float(np.mean(np.minimum(progress, 1e6)))
         self.trial.report(value, self.step)
         self.step += 1
-        self.next_bits *= CHECKPOINT_GROWTH
+        self.next_cost *= CHECKPOINT_GROWTH
         if self.trial.should_prune():
             self.pruned = True
             return True
@@ -367,7 +390,7 @@ def open_storage(url: str):
 
 def open_study(storage, name: str, *, sampler_seed: int, pruner: str) -> optuna.Study:
     sampler = optuna.samplers.TPESampler(seed=sampler_seed)
-    prune = (optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=1)
+    prune = (optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=3)
              if pruner == "median" else optuna.pruners.NopPruner())
     return optuna.load_study(study_name=name, storage=storage, sampler=sampler, pruner=prune)
 

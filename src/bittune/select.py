@@ -3,7 +3,8 @@
 Bits to target vary a lot between seeds for some methods (DESIGN.md: MARINA
 1.3-2.8x), so the best trial of a search is partly luck. The best few
 distinct candidates are re-run on seeds the search never used; the winner is
-the one with the fewest mean bits that reached the target on every fresh seed.
+the one with the lowest mean cost (bits, or simulated seconds) that reached
+the target on every fresh seed.
 Its step is then halved (by ``backoff_factor``, at most ``backoff_steps``
 times) while the mean bits grow by less than ``backoff_tolerance``, so the
 chosen point sits away from the divergence edge. The theory setting of the
@@ -31,6 +32,18 @@ class Evaluation:
 
     candidate: Candidate
     runs: list[Trajectory] = field(repr=False)
+    network: object = None  # NetworkModel when the objective is seconds
+
+    @property
+    def costs(self) -> np.ndarray:
+        """What the search minimised, per seed: bits, or simulated seconds."""
+        if self.network is None:
+            return self.bits
+        return np.array([self.network.seconds(r) for r in self.runs])
+
+    @property
+    def mean_cost(self) -> float:
+        return float(self.costs.mean())
 
     @property
     def all_reached(self) -> bool:
@@ -65,6 +78,9 @@ class Evaluation:
             "std_rounds": float(k.std(ddof=1)) if len(k) > 1 else 0.0,
             "bits_per_worker": [float(v) for v in b],
             "rounds": [int(v) for v in k],
+            **({} if self.network is None else {
+                "mean_seconds": self.mean_cost, "seconds": [float(v) for v in self.costs],
+                "std_seconds": float(self.costs.std(ddof=1)) if len(b) > 1 else 0.0}),
         }
 
 
@@ -81,8 +97,8 @@ class Selection:
         return self.winner.all_reached
 
     def gain(self) -> float:
-        """Baseline mean bits over winner mean bits (a lower bound if the baseline missed)."""
-        return self.baseline.mean_bits / self.winner.mean_bits
+        """Baseline mean cost over winner mean cost (a lower bound if the baseline missed)."""
+        return self.baseline.mean_cost / self.winner.mean_cost
 
 
 def validation_seeds(spec) -> list[int]:
@@ -90,7 +106,7 @@ def validation_seeds(spec) -> list[int]:
     return [1_000_000 + spec.seed * 1000 + j for j in range(spec.validation_seeds)]
 
 
-def evaluate(ws, candidates: list[Candidate], seeds: list[int]) -> list[Evaluation]:
+def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None) -> list[Evaluation]:
     """Run each candidate on ``seeds``; candidates of one method and compressor share a batch."""
     groups: dict[tuple, list[int]] = {}
     for i, c in enumerate(candidates):
@@ -112,7 +128,7 @@ def evaluate(ws, candidates: list[Candidate], seeds: list[int]) -> list[Evaluati
                         max_bits_per_worker=job.budget.max_bits_per_worker,
                         stall_window=stall_window(first.method, params.get("sync_probability")))
         for j, i in enumerate(idx):
-            out[i] = Evaluation(candidates[i], runs[j * S:(j + 1) * S])
+            out[i] = Evaluation(candidates[i], runs[j * S:(j + 1) * S], network)
     return out
 
 
@@ -131,7 +147,7 @@ def finalists(study, space: Space, *, count: int) -> list[Candidate]:
     return out
 
 
-def select(ws, space: Space, study) -> Selection:
+def select(ws, space: Space, study, network=None) -> Selection:
     """Validate the finalists, back the winner's step off, run the theory baseline."""
     spec = ws.job.search
     seeds = validation_seeds(spec)
@@ -140,21 +156,21 @@ def select(ws, space: Space, study) -> Selection:
         from .errors import BittuneError
 
         raise BittuneError("no trial completed: nothing to validate (see the trials' failed_reason)")
-    evals = evaluate(ws, cands, seeds)
+    evals = evaluate(ws, cands, seeds, network)
     ok = [e for e in evals if e.all_reached]
-    winner = min(ok, key=lambda e: e.mean_bits) if ok else min(
-        evals, key=lambda e: (-sum(r.reached for r in e.runs), e.mean_bits))
+    winner = min(ok, key=lambda e: e.mean_cost) if ok else min(
+        evals, key=lambda e: (-sum(r.reached for r in e.runs), e.mean_cost))
     backoff: list[Evaluation] = []
     if winner.all_reached and spec.backoff_steps > 0:
         steps = [winner.candidate.step_size / spec.backoff_factor ** j for j in range(1, spec.backoff_steps + 1)]
-        backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds)
-        limit = winner.mean_bits * (1.0 + spec.backoff_tolerance)
+        backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds, network)
+        limit = winner.mean_cost * (1.0 + spec.backoff_tolerance)
         chosen = winner
         for e in backoff:
-            if not (e.all_reached and e.mean_bits <= limit):
+            if not (e.all_reached and e.mean_cost <= limit):
                 break
             chosen = e
         winner = chosen
     base_comp = space.theory_density(winner.candidate.method)
-    baseline = evaluate(ws, [space.candidate(winner.candidate.method, base_comp)], seeds)[0]
+    baseline = evaluate(ws, [space.candidate(winner.candidate.method, base_comp)], seeds, network)[0]
     return Selection(winner=winner, baseline=baseline, finalists=evals, backoff=backoff, seeds=seeds)

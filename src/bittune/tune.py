@@ -27,6 +27,7 @@ from .config import write_config
 from .errors import EXIT, InputError
 from .job import Job, load_job
 from .probe import probe_workspace
+from .report import write_report
 from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials, open_storage,
                      open_study, run_trials, search_seeds)
 from .select import Selection, select
@@ -43,6 +44,7 @@ class TuneResult:
     study_name: str
     storage: str
     trials: dict
+    report: dict | None = None  # paths written by the report
 
 
 def data_digest(job: Job) -> str:
@@ -65,6 +67,7 @@ class Prepared:
     report: object
     space: Space
     overrides: dict
+    network: object = None  # NetworkModel for the objective "seconds"
 
 
 def apply_overrides(job: Job, overrides: dict) -> Job:
@@ -92,7 +95,21 @@ def prepare(job_path, overrides: dict, log) -> Prepared:
              f"({report.oracle_calls} oracle calls, {report.seconds:.1f} s)")
     vectors, _ = ws.problem.local_grads(report.points)
     space = Space(job.search, constants, target=ws.target, contraction_vectors=vectors)
-    return Prepared(job, ws, constants, report, space, overrides)
+    return Prepared(job, ws, constants, report, space, overrides, network_model(job, ws))
+
+
+def network_model(job: Job, ws):
+    """The job's network model when it minimises seconds (compute time measured if not given)."""
+    if job.objective != "seconds":
+        return None
+    from .cost import NetworkModel, measure_compute_seconds
+
+    net = job.network
+    compute = net.compute_seconds
+    if compute is None:
+        compute = measure_compute_seconds(ws.problem, ws.x0)
+    return NetworkModel(latency=net.latency, uplink_bandwidth=net.uplink_bandwidth,
+                        downlink_bandwidth=net.downlink_bandwidth, compute_seconds=compute)
 
 
 def respace(prep: Prepared, overrides: dict) -> Prepared:
@@ -101,7 +118,7 @@ def respace(prep: Prepared, overrides: dict) -> Prepared:
     job = apply_overrides(prep.job, overrides)
     vectors, _ = prep.ws.problem.local_grads(prep.report.points)
     space = Space(job.search, prep.constants, target=prep.ws.target, contraction_vectors=vectors)
-    return Prepared(job, prep.ws, prep.constants, prep.report, space, overrides)
+    return Prepared(job, prep.ws, prep.constants, prep.report, space, overrides, prep.network)
 
 
 def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: list[dict] | None = None):
@@ -128,6 +145,7 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
         log.note(f"resume: {done} trial(s) already done of {spec.trials}")
     study.set_user_attr("constants", _plain(prep.constants.to_dict()))
     study.set_user_attr("probe_points", _plain(prep.report.points.tolist()))
+    study.set_user_attr("network", None if prep.network is None else prep.network.to_dict())
 
     seeds = np.random.SeedSequence(spec.seed).spawn(spec.jobs)
     sampler_seeds = [int(s.generate_state(1)[0]) for s in seeds]
@@ -138,7 +156,7 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
             ws = prep.ws
             objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                                   max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
-                                  seeds=search_seeds(spec), worker=0)
+                                  seeds=search_seeds(spec), worker=0, network=prep.network)
             run_trials(open_study(store, name, sampler_seed=sampler_seeds[0], pruner=spec.pruner), objective,
                        budget=spec.trials)
         else:
@@ -154,8 +172,8 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
 
 
 def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None, seed: int | None = None,
-         run_dir=None, storage: str | None = None, progress=None) -> TuneResult:
-    """Tune the job and write the config to ``output``; returns what was written and why."""
+         run_dir=None, storage: str | None = None, report_dir=None, progress=None) -> TuneResult:
+    """Tune the job and write the config to ``output`` and the report (default: RUN_DIR/report)."""
     output = Path(output)
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
     storage_url = storage or str(run_dir / "study.journal")
@@ -164,15 +182,17 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log)
     study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log)
     log.note("select: validating the best candidates on fresh seeds")
-    selection = select(prep.ws, prep.space, study)
+    selection = select(prep.ws, prep.space, study, prep.network)
     config = _config_doc(prep, selection, study.study_name, storage_url)
     write_config(output, config)
     write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
                   storage=storage_url)
+    paths = write_report(run_dir, out_dir=report_dir)
+    log.note(f"report: {paths['html']}")
     code = EXIT["ok"] if selection.all_reached else EXIT["no_candidate"]
     log.note(f"wrote {output}" + ("" if selection.all_reached else " (best effort: no candidate reached the "
                                                                      "target on every fresh seed)"))
-    return TuneResult(code, config, selection, study.study_name, storage_url, trial_counts(study))
+    return TuneResult(code, config, selection, study.study_name, storage_url, trial_counts(study), paths)
 
 
 def trial_counts(study) -> dict:
@@ -186,6 +206,7 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int, sampler
     from threadpoolctl import threadpool_limits
 
     from .constants import Constants
+    from .cost import NetworkModel
     from .problems import _shards
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
@@ -199,9 +220,11 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int, sampler
         # Same space as the coordinator's: constants and probe points from the study.
         vectors, _ = ws.problem.local_grads(np.asarray(study.user_attrs["probe_points"]))
         space = Space(job.search, constants, target=ws.target, contraction_vectors=vectors)
+        net = study.user_attrs.get("network")
+        network = None if net is None else NetworkModel(**net)
         objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                               max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
-                              seeds=search_seeds(job.search), worker=index)
+                              seeds=search_seeds(job.search), worker=index, network=network)
         return run_trials(study, objective, budget=budget)
 
 
@@ -291,10 +314,15 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str) -> dict
         "theory_baseline": {k: b[k] for k in ("method", "compressor", "step_size", "sync_probability",
                                                "shift_rate", "reached", "mean_bits_per_worker",
                                                "std_bits_per_worker", "mean_rounds")},
+        "objective": job.objective,
         "gain_over_theory": float(sel.gain()),
         "gain_is_lower_bound": not sel.baseline.all_reached,
         "target_grad_norm_sq": float(ws.target),
     }
+    if prep.network is not None:
+        doc["expected"].update(mean_seconds=w["mean_seconds"], std_seconds=w["std_seconds"],
+                               seconds=w["seconds"], network=prep.network.to_dict())
+        doc["expected"]["theory_baseline"]["mean_seconds"] = b["mean_seconds"]
     if not sel.all_reached:
         doc["best_effort"] = True
     c = constants.to_dict()
