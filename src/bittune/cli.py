@@ -164,8 +164,10 @@ def _cmd_theory(args: argparse.Namespace) -> int:
 def _cmd_tune(args: argparse.Namespace) -> int:
     from .tune import tune
 
+    if args.workers_only and not args.storage:
+        raise InputError("--workers-only: needs --storage (a database the workers can reach)")
     result = tune(args.job, output=args.output, trials=args.trials, jobs=args.jobs, seed=args.seed,
-                  run_dir=args.run_dir, storage=args.storage, report_dir=args.report)
+                  run_dir=args.run_dir, storage=args.storage, report_dir=args.report, workers_only=args.workers_only)
     cfg, exp = result.config, result.config["expected"]
     if args.json:
         _emit_json({"config": str(args.output), "exit_code": result.exit_code, "study": result.study_name,
@@ -191,6 +193,18 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         print(f"config: {args.output}")
         print(f"report: {result.report['html']}")
     return result.exit_code
+
+
+def _cmd_worker(args: argparse.Namespace) -> int:
+    from .tune import worker_main
+
+    ran = worker_main(args.job, args.storage, args.study, budget=args.trials, sampler_seed=args.seed,
+                      index=args.index)
+    if args.json:
+        _emit_json({"study": args.study, "trials_run": ran})
+    else:
+        print(f"worker {args.index}: ran {ran} trial(s) of study {args.study}")
+    return EXIT["ok"]
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
@@ -285,8 +299,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--run-dir", help="folder for the study storage (default: beside the output, NAME.run)")
     p.add_argument("--storage", help="Optuna storage URL (default: a journal file in the run folder)")
     p.add_argument("--report", help="folder for the report (default: RUN_DIR/report)")
+    p.add_argument("--workers-only", action="store_true",
+                   help="run no trial here: enqueue the seeds, wait for `bittune worker` processes to spend the "
+                        "budget, then select and write the config (needs --storage)")
     p.add_argument("--json", action="store_true", help="print one JSON summary document on stdout")
     p.set_defaults(func=_cmd_tune)
+
+    p = sub.add_parser("worker", help="join a running study (from this or another machine) and run trials")
+    p.add_argument("--job", required=True, help="the same job file as the coordinator's (data path may differ)")
+    p.add_argument("--storage", required=True, help="the study's storage URL")
+    p.add_argument("--study", required=True, help="the study name (printed by the coordinator)")
+    p.add_argument("--trials", type=_positive_int, help="global budget (default: the coordinator's)")
+    p.add_argument("--seed", type=_nonneg_int, help="this worker's sampler seed (default: fresh entropy)")
+    p.add_argument("--index", type=_nonneg_int, default=0, help="a tag recorded on this worker's trials")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.set_defaults(func=_cmd_worker)
 
     p = sub.add_parser("report", help="rebuild the report of a finished run from its storage and summary")
     p.add_argument("run_dir", help="the run folder (holds summary.json)")

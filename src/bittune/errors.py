@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["BittuneError", "InputError", "GradientCheckError", "EXIT"]
+__all__ = ["BittuneError", "InputError", "GradientCheckError", "StorageError", "EXIT"]
 
 #: Exit codes of every command (DESIGN.md, "Commands and exit codes").
 EXIT = {
@@ -52,3 +52,9 @@ class GradientCheckError(BittuneError):
     """The model's gradient disagrees with finite differences."""
 
     exit_code = EXIT["gradient_check"]
+
+
+class StorageError(BittuneError):
+    """The study storage cannot be reached (retryable: exit 6)."""
+
+    exit_code = EXIT["storage"]

@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import math
 import os
+import time
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -36,7 +37,7 @@ from .theory import measured_contraction, theory_point
 
 __all__ = [
     "Candidate", "Space", "Objective", "score", "open_storage", "open_study", "enqueue_seeds",
-    "fail_stale_trials", "run_trials", "search_seeds", "stall_window", "COUNTED",
+    "fail_stale_trials", "run_trials", "search_seeds", "stall_window", "COUNTED", "mask_url",
 ]
 
 #: Trial states that count against the global budget.
@@ -378,14 +379,73 @@ def _plain(doc):
 
 
 # ------------------------------------------------------------------- storage
-def open_storage(url: str):
-    """An Optuna storage: a database URL as is, anything else a journal file path."""
-    if "://" in url:
-        return url
-    from optuna.storages import JournalStorage
-    from optuna.storages.journal import JournalFileBackend
+#: Heartbeats for database storages: a trial whose process stopped beating for
+#: GRACE seconds is failed and retried once (Optuna's heartbeat settings).
+#: BITTUNE_HEARTBEAT="interval,grace" (seconds) overrides them, e.g. for a fast test.
+HEARTBEAT, GRACE, CONNECT_TIMEOUT = 20, 60, 10
 
-    return JournalStorage(JournalFileBackend(str(url)))
+
+def _heartbeat() -> tuple[int, int]:
+    text = os.environ.get("BITTUNE_HEARTBEAT")
+    if not text:
+        return HEARTBEAT, GRACE
+    try:
+        interval, grace = (int(v) for v in text.split(","))
+        if interval < 1 or grace <= interval:
+            raise ValueError
+    except ValueError:
+        from .errors import InputError
+
+        raise InputError(f"BITTUNE_HEARTBEAT: must be 'interval,grace' in whole seconds with grace > interval "
+                         f">= 1, got {text!r}") from None
+    return interval, grace
+
+
+def mask_url(url: str) -> str:
+    """The URL with its password hidden."""
+    if "://" in url and "@" in url.split("://", 1)[1]:
+        head, tail = url.split("://", 1)
+        cred, host = tail.rsplit("@", 1)
+        if ":" in cred:
+            cred = cred.split(":", 1)[0] + ":***"
+        return f"{head}://{cred}@{host}"
+    return url
+
+
+def open_storage(url: str):
+    """An Optuna storage: a database URL (RDBStorage with heartbeats and a small pool), else a
+    journal file path. An unreachable database raises :class:`StorageError` (exit 6)."""
+    if "://" not in url:
+        from optuna.storages import JournalStorage
+        from optuna.storages.journal import JournalFileBackend
+
+        return JournalStorage(JournalFileBackend(str(url)))
+    import warnings
+
+    from optuna.storages import RDBStorage, RetryHeartbeatStaleTrialCallback
+
+    from .errors import StorageError
+
+    engine = {"pool_size": 1, "max_overflow": 2, "pool_pre_ping": True}
+    if url.startswith("postgresql"):
+        engine["connect_args"] = {"connect_timeout": CONNECT_TIMEOUT}
+    if url.startswith("sqlite"):
+        engine = {}
+    try:
+        # Optuna marks heartbeats "experimental" (a warning, not a defect): we rely on them
+        # knowingly for multi-machine studies, so the warning is silenced here only.
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
+            interval, grace = _heartbeat()
+            return RDBStorage(url, engine_kwargs=engine, heartbeat_interval=interval, grace_period=grace,
+                              heartbeat_stale_trial_callback=RetryHeartbeatStaleTrialCallback(max_retry=1))
+    except ImportError as exc:
+        raise StorageError(f"storage {mask_url(url)}: the database driver is missing ({exc}); "
+                           f"install bittune[postgres]") from None
+    except Exception as exc:  # SQLAlchemy's OperationalError and friends: report, retry later
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise StorageError(f"storage unreachable: {mask_url(url)} ({type(exc).__name__}: "
+                           f"{reason.replace(url, mask_url(url))})") from None
 
 
 def open_study(storage, name: str, *, sampler_seed: int, pruner: str) -> optuna.Study:
@@ -415,30 +475,52 @@ def enqueue_seeds(study: optuna.Study, space: Space) -> int:
     return len(points)
 
 
-def run_trials(study: optuna.Study, objective: Objective, *, budget: int) -> int:
-    """Run trials in this process until ``budget`` trials are finished or running anywhere.
+class _OverBudget(Exception):
+    """Raised inside a trial that was asked for after the global budget was taken."""
 
-    Returns how many this process ran. A trial whose number shows that the
-    budget was already taken when it was asked for (a race between processes)
-    is told FAIL with the reason recorded, and the loop ends.
+
+def recover_stale_trials(study: optuna.Study) -> None:
+    """Fail (and, through the storage's callback, retry) trials whose heartbeat stopped.
+
+    Only database storages keep heartbeats; elsewhere this does nothing. Optuna
+    marks the function experimental: the warning is silenced here only.
+    """
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
+        optuna.storages.fail_stale_trials(study)
+
+
+def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: float = 1.0) -> int:
+    """Run trials in this process until ``budget`` trials are finished (complete or pruned).
+
+    Each trial runs through ``study.optimize(n_trials=1)``, so database
+    heartbeats work. While the rest of the budget is running in other
+    processes, this one waits and recovers trials whose heartbeat stopped (a
+    crashed machine), so their retries still run. A trial whose number shows
+    that the budget was already taken when it started (a race between
+    processes) is failed with the reason recorded. Returns how many trials this
+    process ran.
     """
     done = 0
-    while len(study.get_trials(deepcopy=False, states=COUNTED)) < budget:
-        trial = study.ask()
+    finished_states = (TrialState.COMPLETE, TrialState.PRUNED)
+
+    def guarded(trial: optuna.Trial) -> float:
         ahead = [t for t in study.get_trials(deepcopy=False, states=COUNTED) if t.number < trial.number]
         if len(ahead) >= budget:
-            study._storage.set_trial_user_attr(trial._trial_id, "failed_reason", "over the trial budget")
-            study.tell(trial, state=TrialState.FAIL)
-            break
-        try:
-            value = objective(trial)
-        except optuna.TrialPruned:
-            study.tell(trial, state=TrialState.PRUNED)
-        except Exception as exc:  # a bug or a numerical fault: record it, keep the study
-            study._storage.set_trial_user_attr(trial._trial_id, "failed_reason", f"{type(exc).__name__}: {exc}")
-            study.tell(trial, state=TrialState.FAIL)
-            raise
-        else:
-            study.tell(trial, value)
-        done += 1
+            trial.set_user_attr("failed_reason", "over the trial budget")
+            raise _OverBudget()
+        return objective(trial)
+
+    while len(study.get_trials(deepcopy=False, states=finished_states)) < budget:
+        if len(study.get_trials(deepcopy=False, states=COUNTED)) >= budget:
+            time.sleep(poll)
+            recover_stale_trials(study)
+            continue
+        before = len(study.get_trials(deepcopy=False, states=(TrialState.FAIL,)))
+        study.optimize(guarded, n_trials=1, catch=(_OverBudget,), gc_after_trial=False)
+        failed_over = [t for t in study.get_trials(deepcopy=False, states=(TrialState.FAIL,))[before:]
+                       if t.user_attrs.get("failed_reason") == "over the trial budget"]
+        done += 0 if failed_over else 1
     return done

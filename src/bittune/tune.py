@@ -28,7 +28,7 @@ from .errors import EXIT, InputError
 from .job import Job, load_job
 from .probe import probe_workspace
 from .report import write_report
-from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials, open_storage,
+from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials, mask_url, open_storage,
                      open_study, run_trials, search_seeds)
 from .select import Selection, select
 from .workspace import open_job
@@ -121,8 +121,13 @@ def respace(prep: Prepared, overrides: dict) -> Prepared:
     return Prepared(job, prep.ws, prep.constants, prep.report, space, overrides, prep.network)
 
 
-def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: list[dict] | None = None):
-    """Create or resume the study, enqueue warm-start and theory seeds, run the trials; returns the study."""
+def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: list[dict] | None = None,
+               workers_only: bool = False):
+    """Create or resume the study, enqueue warm-start and theory seeds, run the trials; returns the study.
+
+    With ``workers_only`` no trial runs here: ``bittune worker`` processes (on
+    this or other machines) run them, and this waits until the budget is spent.
+    """
     job, spec, space = prep.job, prep.job.search, prep.space
     # Inputs are valid and the model passed its check: only now touch the disk.
     run_dir.mkdir(parents=True, exist_ok=True)
@@ -130,9 +135,11 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
     store = open_storage(storage_url)
     study = optuna.create_study(study_name=name, storage=store, direction="minimize", load_if_exists=True)
     _check_study(study, job)
-    stale = fail_stale_trials(study)
-    if stale:
-        log.note(f"resume: {stale} trial(s) left running by a stopped run marked failed")
+    if "://" not in storage_url:  # one machine: whatever is RUNNING was left by a killed run
+        stale = fail_stale_trials(study)
+        if stale:
+            log.note(f"resume: {stale} trial(s) left running by a stopped run marked failed")
+    # (database storages rely on heartbeats instead: other machines may be running trials now)
     if not study.user_attrs.get("seeded"):
         for params in warm or []:
             study.enqueue_trial(params, user_attrs={"warm_start": True})
@@ -146,13 +153,19 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
     study.set_user_attr("constants", _plain(prep.constants.to_dict()))
     study.set_user_attr("probe_points", _plain(prep.report.points.tolist()))
     study.set_user_attr("network", None if prep.network is None else prep.network.to_dict())
+    study.set_user_attr("budget", spec.trials)
+    study.set_user_attr("search_overrides", _plain(prep.overrides))
 
     seeds = np.random.SeedSequence(spec.seed).spawn(spec.jobs)
     sampler_seeds = [int(s.generate_state(1)[0]) for s in seeds]
     watcher = _Watcher(study, log, spec.trials)
     watcher.start()
     try:
-        if spec.jobs == 1:
+        if workers_only:
+            log.note(f"waiting for workers: bittune worker --job {job.path} --storage {mask_url(storage_url)} "
+                     f"--study {name}")
+            _wait_for_budget(study, spec.trials)
+        elif spec.jobs == 1:
             ws = prep.ws
             objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                                   max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
@@ -171,8 +184,21 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
     return study
 
 
+def _wait_for_budget(study, budget: int, poll: float = 1.0) -> None:
+    """Wait until the workers have finished the budget, recovering trials of crashed machines."""
+    from .search import recover_stale_trials
+
+    while True:
+        finished = study.get_trials(deepcopy=False, states=(TrialState.COMPLETE, TrialState.PRUNED))
+        if len(finished) >= budget:
+            return
+        time.sleep(poll)
+        recover_stale_trials(study)
+
+
 def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None, seed: int | None = None,
-         run_dir=None, storage: str | None = None, report_dir=None, progress=None) -> TuneResult:
+         run_dir=None, storage: str | None = None, report_dir=None, workers_only: bool = False,
+         progress=None) -> TuneResult:
     """Tune the job and write the config to ``output`` and the report (default: RUN_DIR/report)."""
     output = Path(output)
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
@@ -180,7 +206,7 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     job0 = load_job(job_path)
     log = progress or _Progress(total=trials or job0.search.trials)
     prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log)
-    study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log)
+    study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only)
     log.note("select: validating the best candidates on fresh seeds")
     selection = select(prep.ws, prep.space, study, prep.network)
     config = _config_doc(prep, selection, study.study_name, storage_url)
@@ -200,9 +226,10 @@ def trial_counts(study) -> dict:
             for s in (TrialState.COMPLETE, TrialState.PRUNED, TrialState.FAIL)}
 
 
-def worker_main(job_path: str, storage_url: str, name: str, budget: int, sampler_seed: int, index: int,
-                overrides: dict) -> int:
-    """One worker process: rebuild the problem, read the probe's constants from the study, run trials."""
+def worker_main(job_path: str, storage_url: str, name: str, budget: int | None = None,
+                sampler_seed: int | None = None, index: int = 0, overrides: dict | None = None) -> int:
+    """One worker process (``--jobs`` or ``bittune worker``): rebuild the problem, read the probe's
+    constants, search settings and budget from the study, run trials until the budget is spent."""
     from threadpoolctl import threadpool_limits
 
     from .constants import Constants
@@ -212,20 +239,34 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int, sampler
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     _shards.set_threads(1)  # the processes already fill the cores
     with threadpool_limits(1):
-        job = apply_overrides(load_job(job_path), overrides)
-        ws = open_job(job)
+        job = load_job(job_path)
         store = open_storage(storage_url)
+        try:
+            probe = optuna.load_study(study_name=name, storage=store)
+        except KeyError:
+            raise InputError(f"--study: no study named {name!r} in {mask_url(storage_url)}") from None
+        attrs = probe.user_attrs
+        if attrs.get("job_digest") not in (None, job.digest):
+            raise InputError(f"--study: study {name!r} belongs to another job file (digest "
+                             f"{attrs['job_digest'][:12]}, this job {job.digest[:12]})")
+        if "constants" not in attrs:
+            raise InputError(f"--study: study {name!r} has no probe constants yet (start the coordinator first)")
+        overrides = attrs.get("search_overrides", {}) if overrides is None else overrides
+        job = apply_overrides(job, overrides)
+        ws = open_job(job)
+        if sampler_seed is None:
+            sampler_seed = int(np.random.SeedSequence().generate_state(1)[0])  # fresh entropy per worker
         study = open_study(store, name, sampler_seed=sampler_seed, pruner=job.search.pruner)
-        constants = Constants.from_dict(study.user_attrs["constants"])
+        constants = Constants.from_dict(attrs["constants"])
         # Same space as the coordinator's: constants and probe points from the study.
-        vectors, _ = ws.problem.local_grads(np.asarray(study.user_attrs["probe_points"]))
+        vectors, _ = ws.problem.local_grads(np.asarray(attrs["probe_points"]))
         space = Space(job.search, constants, target=ws.target, contraction_vectors=vectors)
-        net = study.user_attrs.get("network")
+        net = attrs.get("network")
         network = None if net is None else NetworkModel(**net)
         objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                               max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                               seeds=search_seeds(job.search), worker=index, network=network)
-        return run_trials(study, objective, budget=budget)
+        return run_trials(study, objective, budget=budget or int(attrs.get("budget", job.search.trials)))
 
 
 SUMMARY = "summary.json"
@@ -336,21 +377,10 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str) -> dict
         "time_utc": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "job": str(job.path), "job_sha256": job.digest,
         "data": str(data_path), "data_sha256": data_digest(job),
-        "study": name, "storage": _mask(storage), "seed": int(spec.seed), "trials": int(spec.trials),
+        "study": name, "storage": mask_url(storage), "seed": int(spec.seed), "trials": int(spec.trials),
         "search_seeds": search_seeds(spec),
     }
     return _plain(doc)
-
-
-def _mask(url: str) -> str:
-    """Hide a password in a database URL."""
-    if "://" in url and "@" in url:
-        head, tail = url.split("://", 1)
-        cred, host = tail.rsplit("@", 1)
-        if ":" in cred:
-            cred = cred.split(":", 1)[0] + ":***"
-        return f"{head}://{cred}@{host}"
-    return url
 
 
 def _plain(doc):
