@@ -293,12 +293,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("tune", help="the main job: probe, theory, search, select; writes a config")
     p.add_argument("job", help="job file (YAML)")
     p.add_argument("-o", "--output", required=True, help="config file to write (YAML)")
-    p.add_argument("--trials", type=_positive_int, help="trial budget (overrides search.trials)")
-    p.add_argument("--jobs", type=_positive_int, help="parallel processes (overrides search.jobs)")
-    p.add_argument("--seed", type=_nonneg_int, help="search seed (overrides search.seed)")
-    p.add_argument("--run-dir", help="folder for the study storage (default: beside the output, NAME.run)")
-    p.add_argument("--storage", help="Optuna storage URL (default: a journal file in the run folder)")
-    p.add_argument("--report", help="folder for the report (default: RUN_DIR/report)")
+    _search_options(p, trials_help="trial budget (overrides search.trials)")
     p.add_argument("--workers-only", action="store_true",
                    help="run no trial here: enqueue the seeds, wait for `bittune worker` processes to spend the "
                         "budget, then select and write the config (needs --storage)")
@@ -327,13 +322,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-o", "--output", required=True,
                    help="config to write (a replacement, or the previous config with tonight's evidence; "
                         "when it equals --previous it is written only on replacement)")
-    p.add_argument("--trials", type=_positive_int, help="trial budget (default: a third of search.trials, >= 10)")
-    p.add_argument("--jobs", type=_positive_int, help="parallel processes (overrides search.jobs)")
-    p.add_argument("--seed", type=_nonneg_int, help="search seed (overrides search.seed)")
-    p.add_argument("--run-dir", help="folder for the study storage (default: beside the output, NAME.run)")
-    p.add_argument("--storage", help="Optuna storage URL (default: a journal file in the run folder)")
+    _search_options(p, trials_help="trial budget (default: a third of search.trials, >= 10)")
     p.add_argument("--history", help="folder that keeps every night's config and summary")
-    p.add_argument("--report", help="folder for the report (default: RUN_DIR/report)")
     p.add_argument("--margin", type=float, default=0.03, help="bits saving needed to replace (default 0.03)")
     p.add_argument("--level", type=float, default=0.05, help="significance level of the paired test (default 0.05)")
     p.add_argument("--drift-threshold", type=float, default=0.5,
@@ -361,6 +351,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.set_defaults(func=_cmd_theory)
     return ap
+
+
+def _search_options(p: argparse.ArgumentParser, *, trials_help: str) -> None:
+    """The options tune and retune share."""
+    p.add_argument("--trials", type=_positive_int, help=trials_help)
+    p.add_argument("--jobs", type=_positive_int, help="parallel processes (overrides search.jobs)")
+    p.add_argument("--seed", type=_nonneg_int, help="search seed (overrides search.seed)")
+    p.add_argument("--run-dir", help="folder for the study storage (default: beside the output, NAME.run)")
+    p.add_argument("--storage", help="Optuna storage URL (default: a journal file in the run folder)")
+    p.add_argument("--report", help="folder for the report (default: RUN_DIR/report)")
 
 
 def _positive_int(text: str) -> int:

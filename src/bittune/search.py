@@ -177,6 +177,15 @@ class Space:
         return self.candidate(method, compressor, step_mult=step_mult, sync_mult=sync_mult,
                               shift_mult=shift_mult)
 
+    def density_options(self, name: str, points: int) -> list[dict]:
+        """Settings of compressor ``name`` on a log grid of ``points`` densities (one if it has none)."""
+        dp = self._density_param(name)
+        if dp is None:
+            return [{"name": name}]
+        pname, lo, hi = dp
+        grid = np.unique(np.round(np.geomspace(lo, hi, points)).astype(int))
+        return [{"name": name, pname.split(".")[1]: int(v)} for v in grid]
+
     def theory_density(self, method: str) -> dict:
         """The compressor setting with the fewest predicted bits for ``method``.
 
@@ -185,14 +194,7 @@ class Space:
         """
         best, best_bits = None, math.inf
         for name in self.compressors[method]:
-            dp = self._density_param(name)
-            if dp is None:
-                options = [{"name": name}]
-            else:
-                pname, lo, hi = dp
-                grid = np.unique(np.round(np.geomspace(lo, hi, 12)).astype(int))
-                options = [{"name": name, pname.split(".")[1]: int(v)} for v in grid]
-            for comp in options:
+            for comp in self.density_options(name, 12):
                 bits = self.theory(method, comp).predicted_bits_per_worker
                 if bits < best_bits:
                     best, best_bits = comp, bits

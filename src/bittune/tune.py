@@ -294,16 +294,10 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
 
     rows = []
     for method in space.methods:
-        for name in space.compressors[method]:
-            dp = space._density_param(name)
-            if dp is None:
-                comps = [{"name": name}]
-            else:
-                pname, lo, hi = dp
-                grid = np.unique(np.round(np.geomspace(lo, hi, 6)).astype(int))
-                comps = [{"name": name, pname.split(".")[1]: int(v)} for v in grid]
-            for comp in comps:
-                rows.append(space.theory(method, comp).to_dict())
+        comps = [c for name in space.compressors[method] for c in space.density_options(name, 6)]
+        best = space.theory_density(method)  # the baseline's setting, which a coarse grid may miss
+        comps += [] if best in comps else [best]
+        rows += [space.theory(method, comp).to_dict() for comp in comps]
     gc = report.gradient_check
     doc = {
         "bittune_summary": 1,
