@@ -1,0 +1,90 @@
+"""SIGKILL at random moments of `bittune tune`, then rerun: nothing finished is lost, no config is
+ever half-written, and the previous config stays intact until a complete new one replaces it."""
+
+from __future__ import annotations
+
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import optuna
+import pytest
+import yaml
+from optuna.trial import TrialState
+
+from bittune.config import load_config
+from bittune.search import open_storage
+
+ROOT = Path(__file__).resolve().parents[1]
+PREVIOUS = "bittune_config: 1\nmethod: gd\ncompressor: {name: identity}\nstep_size: 0.01\n"
+
+
+def _finished(run_dir: Path) -> dict[int, float]:
+    journal = run_dir / "study.journal"
+    if not journal.exists():
+        return {}
+    storage = open_storage(str(journal))
+    summaries = optuna.get_all_study_summaries(storage)
+    if not summaries:
+        return {}
+    study = optuna.load_study(study_name=summaries[0].study_name, storage=storage)
+    return {t.number: t.value for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))}
+
+
+@pytest.mark.slow
+def test_random_kills_never_lose_trials_or_half_write_the_config(tmp_path):
+    subprocess.run([sys.executable, str(ROOT / "examples/frost/make_data.py"), "--out", str(tmp_path / "st.svm"),
+                    "--nights", "120"], check=True, capture_output=True)
+    job = tmp_path / "job.yaml"
+    job.write_text("""
+data: st.svm
+model: logistic_nonconvex
+regularization: 0.01
+workers: {count: 8, split: dirichlet, seed: 0}
+target: {grad_norm_sq: 1e-5, relative: true}
+budget: {max_rounds: 5000}
+search: {methods: [diana, marina], compressors: [rand_k, dither], trials: 30, seeds: 2}
+""")
+    out = tmp_path / "config.yaml"
+    out.write_text(PREVIOUS)
+    cmd = [sys.executable, "-m", "bittune.cli", "tune", str(job), "-o", str(out)]
+    # One uninterrupted run elsewhere measures how long a run takes, so kill moments spread
+    # over probe, trials, selection, report and the config write.
+    t0 = time.monotonic()
+    subprocess.run(cmd[:-1] + [str(tmp_path / "timing.yaml")], check=True, capture_output=True)
+    duration = time.monotonic() - t0
+    rng = np.random.default_rng(2024)
+    kills = 0
+    seen: dict[int, float] = {}
+    for delay in np.sort(rng.uniform(0.3, 0.8, size=8)) * duration:
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        time.sleep(delay / 8 + 0.2)  # each rerun resumes, so it needs less time: kill sooner
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGKILL)
+            kills += 1
+        proc.wait()
+        text = out.read_text()
+        if text != PREVIOUS:  # replaced: then it must be a complete, valid config
+            cfg = load_config(out)
+            assert "expected" in cfg.extra and "provenance" in cfg.extra
+        now = _finished(tmp_path / "config.run")
+        for number, value in seen.items():  # no completed trial is ever lost or changed
+            assert now.get(number) == value
+        seen = now
+        assert not [p for p in tmp_path.iterdir() if p.name.startswith(".tmp")]  # no temp file left
+    assert kills >= 4
+    final = subprocess.run(cmd, capture_output=True, text=True)
+    assert final.returncode == 0, final.stderr
+    cfg = load_config(out)
+    assert cfg.extra["expected"]["reached_all"] is True
+    done = _finished(tmp_path / "config.run")
+    for number, value in seen.items():
+        assert done.get(number) == value
+    storage = open_storage(str(tmp_path / "config.run" / "study.journal"))
+    study = optuna.load_study(study_name=optuna.get_all_study_summaries(storage)[0].study_name, storage=storage)
+    finished = study.get_trials(deepcopy=False, states=(TrialState.COMPLETE, TrialState.PRUNED))
+    assert len(finished) == 30
+    assert yaml.safe_load(out.read_text())["bittune_config"] == 1
