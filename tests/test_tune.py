@@ -240,3 +240,25 @@ search: {{methods: [gd, diana], compressors: [dither], trials: 30, seeds: 2}}
                                                   + e["mean_rounds"] * 32 * 38 / 1e12, rel=1e-9)
         chosen[name] = cfg["method"]
     assert chosen == {"fast": "gd", "metered": "diana"}
+
+
+def test_a_numerical_fault_fails_one_trial_not_the_study(frost, tmp_path, monkeypatch):
+    import bittune.search as search
+
+    real = search.simulate
+    calls = {"n": 0}
+
+    def faulty(*args, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise FloatingPointError("overflow encountered in multiply")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(search, "simulate", faulty)
+    job = _job(tmp_path, str(frost / "stations.svm"), trials=10, methods=("marina",))
+    result = tune(job, output=tmp_path / "c.yaml", progress=_Quiet())
+    trials = _trials(tmp_path / "c.run", job)
+    failed = [t for t in trials if t.state == TrialState.FAIL]
+    assert len(failed) == 1 and "overflow" in failed[0].user_attrs["failed_reason"]
+    assert sum(t.state in (TrialState.COMPLETE, TrialState.PRUNED) for t in trials) == 10
+    assert result.exit_code == 0

@@ -513,7 +513,11 @@ def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: 
         if len(ahead) >= budget:
             trial.set_user_attr("failed_reason", "over the trial budget")
             raise _OverBudget()
-        return objective(trial)
+        try:
+            return objective(trial)
+        except ArithmeticError as exc:
+            trial.set_user_attr("failed_reason", f"{type(exc).__name__}: {exc}")
+            raise
 
     while len(study.get_trials(deepcopy=False, states=finished_states)) < budget:
         if len(study.get_trials(deepcopy=False, states=COUNTED)) >= budget:
@@ -521,7 +525,9 @@ def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: 
             recover_stale_trials(study)
             continue
         before = len(study.get_trials(deepcopy=False, states=(TrialState.FAIL,)))
-        study.optimize(guarded, n_trials=1, catch=(_OverBudget,), gc_after_trial=False)
+        # A numerical fault (overflow, invalid value, division by zero) ends that trial as
+        # FAIL with the reason recorded by Optuna, never the study; bugs still propagate.
+        study.optimize(guarded, n_trials=1, catch=(_OverBudget, ArithmeticError), gc_after_trial=False)
         failed_over = [t for t in study.get_trials(deepcopy=False, states=(TrialState.FAIL,))[before:]
                        if t.user_attrs.get("failed_reason") == "over the trial budget"]
         done += 0 if failed_over else 1
