@@ -24,10 +24,21 @@ from bittune.errors import InputError
 D, N, B = 40, 3, 2  # dimension, workers, trajectories of the small conformance blocks
 SETTINGS = [
     "identity", "rand_k:1", "rand_k:7", f"rand_k:{D}", "top_k:1", "top_k:7",
-    "dither:1", "dither:4", "natural",
+    "dither:1", "dither:4", "natural", "natural_dither:1", "natural_dither:3", "perm_k",
 ]
 UNBIASED = [s for s in SETTINGS if not s.startswith("top_k")]
-RANDOMISED = ["rand_k:1", "rand_k:7", "dither:1", "dither:4", "natural"]
+RANDOMISED = ["rand_k:1", "rand_k:7", "dither:1", "dither:4", "natural", "natural_dither:1",
+              "natural_dither:3", "perm_k"]
+
+
+def name_of(label: str) -> str:
+    """The compressor name of a label ("natural_dither:3" -> "natural_dither")."""
+    return label.partition(":")[0]
+
+
+def build(label, d: int = D, n: int = N) -> Compressor:
+    """make_compressor for n workers (only perm_k uses the worker count)."""
+    return make_compressor(label, d, n_workers=n)
 
 FALSE_ALARM = 1e-6
 Z_ONE = float(norm.isf(FALSE_ALARM))  # one-sided z quantile
@@ -38,10 +49,20 @@ def z_two(m: int) -> float:
     return float(norm.isf(FALSE_ALARM / (2 * m)))
 
 
-def published(label: str, d: int) -> dict:
+def published(label: str, d: int, n: int = N) -> dict:
     """Constants of THEORY.md 1.2, written out here (not read from the module)."""
     name, _, arg = label.partition(":")
     b_ix = math.ceil(math.log2(d))
+    if name == "perm_k":  # Szlendak et al. 2022 (from memory): U(n-1), d/n floats (d >= n); U(d-1), 1 float
+        omega, density = (n - 1, d / n) if d >= n else (d - 1, 1.0)
+        return dict(unbiased=True, omega=omega, alpha=1 / (1 + omega), density=density, bits=32 * density)
+    if name == "natural_dither":  # Horvath et al. 2019, published omega (from memory); bits THEORY.md 1.2
+        s = int(arg)
+        t = 2.0 ** (1 - s)
+        omega = 1 / 8 + math.sqrt(d) * t * min(1, math.sqrt(d) * t)
+        density = min(d, 2 ** (s - 1) * (2 ** (s - 1) + math.sqrt(d)))
+        return dict(unbiased=True, omega=omega, alpha=1 / (1 + omega), density=density,
+                    bits=32 + d * (1 + math.ceil(math.log2(s + 1))))
     if name == "identity":
         return dict(unbiased=True, omega=0.0, alpha=1.0, density=d, bits=32 * d)
     if name == "natural":  # Horvath et al. 2019: second moment 9/8; 9 bits per float32
@@ -78,16 +99,17 @@ KEYS = trajectory_keys([11, 12])
 
 
 def test_registry_names():
-    assert set(COMPRESSORS) == {"identity", "rand_k", "top_k", "dither", "natural"}
+    assert set(COMPRESSORS) == {"identity", "rand_k", "top_k", "dither", "natural", "natural_dither", "perm_k"}
     for name, cls in COMPRESSORS.items():
         assert cls.name == name and issubclass(cls, Compressor)
 
 
 @pytest.mark.parametrize("label", SETTINGS)
 def test_attributes_match_published(label):
-    c = make_compressor(label, D)
+    c = build(label)
     want = published(label, D)
     assert c.name == label.partition(":")[0] and c.dim == D
+    assert c.correlated is (label == "perm_k")
     assert c.unbiased is want["unbiased"]
     # rtol 1e-14: the same closed forms, evaluated in a different order
     for field in ("omega", "alpha", "density"):
@@ -95,12 +117,12 @@ def test_attributes_match_published(label):
     assert c.nominal_bits == pytest.approx(want["bits"], rel=1e-14)
     assert c.label() == label
     assert parse_spec(c.label()) == c.spec()
-    assert make_compressor(c.spec(), D).label() == label
+    assert build(c.spec()).label() == label
 
 
 @pytest.mark.parametrize("label", SETTINGS)
 def test_shape_dtype_and_input_untouched(label):
-    c = make_compressor(label, D)
+    c = build(label)
     v = block(1)
     before = v.copy()
     out, bits = c.compress(v, KEYS, 3)
@@ -113,7 +135,7 @@ def test_shape_dtype_and_input_untouched(label):
 
 @pytest.mark.parametrize("label", SETTINGS)
 def test_deterministic_given_keys_and_round(label):
-    c = make_compressor(label, D)
+    c = build(label)
     v = block(2)
     out1, bits1 = c.compress(v, KEYS, 7)
     out2, bits2 = c.compress(v, KEYS, 7)
@@ -126,7 +148,7 @@ def test_deterministic_given_keys_and_round(label):
 
 @pytest.mark.parametrize("label", SETTINGS)
 def test_alone_equals_batch(label):
-    c = make_compressor(label, D)
+    c = build(label)
     v = block(3)
     out, bits = c.compress(v, KEYS, 5)
     alone, alone_bits = c.compress(v[1:2], KEYS[1:2], 5)
@@ -137,7 +159,7 @@ def test_alone_equals_batch(label):
 @pytest.mark.parametrize("label", SETTINGS)
 def test_workers_independent_of_each_others_data(label):
     """Zero, inf and nan in one message: no warning, other messages unchanged."""
-    c = make_compressor(label, D)
+    c = build(label)
     v = block(4)
     ref, ref_bits = c.compress(v, KEYS, 2)
     w = v.copy()
@@ -148,7 +170,7 @@ def test_workers_independent_of_each_others_data(label):
     np.testing.assert_array_equal(out[0, 0], 0.0)  # zero in, zero out
     np.testing.assert_array_equal(out[1, :2], ref[1, :2])
     np.testing.assert_array_equal(bits[1, :2], ref_bits[1, :2])
-    if label.startswith("dither"):  # zero message: norm + flag only (THEORY.md 1.2)
+    if name_of(label) == "dither":  # zero message: norm + flag only (THEORY.md 1.2)
         assert bits[0, 0] == 33.0
 
 
@@ -157,7 +179,7 @@ def test_scale_equivariance_without_overflow(label):
     """Q(2^900 x) = 2^900 Q(x) exactly with the same random numbers (every definition
     in THEORY.md 1.2 is positively homogeneous; powers of two scale floats exactly).
     Catches a norm computed as sqrt(sum x^2), which overflows here."""
-    c = make_compressor(label, D)
+    c = build(label)
     v = block(5)
     out, bits = c.compress(v, KEYS, 4)
     big, big_bits = c.compress(v * 2.0**900, KEYS, 4)
@@ -171,13 +193,16 @@ def test_scale_equivariance_without_overflow(label):
 
 @pytest.mark.parametrize("label", SETTINGS)
 def test_bits_match_formula(label):
-    c = make_compressor(label, D)
+    c = build(label)
     want = published(label, D)
     for round_ in range(5):
         out, bits = c.compress(block(10 + round_), KEYS, round_)
-        if label.startswith("dither"):
+        if name_of(label) == "dither":
             s = int(label.partition(":")[2])
             expected = dither_bits(np.count_nonzero(out, axis=-1), D, s)
+        elif name_of(label) == "perm_k":  # 32 bits per kept real coordinate, 32 d over the n workers
+            expected = 32.0 * np.count_nonzero(out, axis=-1)
+            np.testing.assert_array_equal(bits.sum(axis=1), 32.0 * D)
         else:
             expected = np.full((B, N), want["bits"])
         np.testing.assert_array_equal(bits, expected)
@@ -212,13 +237,15 @@ def test_nnz_within_density(label):
     """Every message: rand_k / top_k have nnz = K (no zero in the input), dense ones
     keep the support of x, dithering never adds a non-zero. The dither density is a
     bound on the mean only: see test_dither_mean_nnz."""
-    c = make_compressor(label, D)
+    c = build(label)
     for round_ in range(10):
         v = block(20 + round_)
         nnz = np.count_nonzero(c.compress(v, KEYS, round_)[0], axis=-1)
         if label.startswith(("rand_k", "top_k")):
             assert np.all(nnz == published(label, D)["density"])
-        elif label.startswith("dither"):
+        elif name_of(label) == "perm_k":  # d >= n: ceil(d/n) padded slots per worker; the n cover d
+            assert np.all(nnz <= math.ceil(D / N)) and np.all(nnz.sum(axis=1) == D)
+        elif name_of(label) in ("dither", "natural_dither"):
             assert np.all(nnz <= np.count_nonzero(v, axis=-1))
         else:
             np.testing.assert_array_equal(nnz, np.count_nonzero(v, axis=-1))
@@ -242,7 +269,7 @@ def mc_vector(kind: str) -> np.ndarray:
 @functools.lru_cache(maxsize=None)
 def monte_carlo(label: str, kind: str = "gauss") -> dict:
     """Statistics of Q(x) for one fixed x over (trajectory, worker, round) draws."""
-    c = make_compressor(label, D)
+    c = build(label, D, MC_WORKERS)
     x = mc_vector(kind)
     keys = trajectory_keys(np.arange(1000, 1000 + MC_KEYS))
     v = np.broadcast_to(x, (MC_KEYS, MC_WORKERS, D))
@@ -264,11 +291,27 @@ def monte_carlo(label: str, kind: str = "gauss") -> dict:
                 avg_ratio=stats(avg_ratio), nnz=stats(nnz))
 
 
+def natural_levels(x: np.ndarray, s: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The two natural-dithering levels around u_j = |x_j|/||x|| (Horvath et al. 2019):
+    0 and 2^(1-s) below 2^(1-s), else 2^a <= u_j < 2^(a+1) (2^a = u_j on a level)."""
+    u = np.abs(x) / np.linalg.norm(x, axis=-1, keepdims=True)
+    t = 2.0 ** (1 - s)
+    low = np.where(u < t, 0.0, 2.0 ** np.floor(np.log2(np.maximum(u, t))))
+    high = np.where(u < t, t, 2 * low)
+    return u, low, high
+
+
 def exact_coordinate_variance(label: str, x: np.ndarray) -> np.ndarray:
-    """Var Q(x)_j: exact for identity, rand_k, dither; an upper bound for natural."""
+    """Var Q(x)_j: exact for identity, rand_k, dither, natural_dither, perm_k (MC_WORKERS
+    workers); an upper bound for natural."""
     name, _, arg = label.partition(":")
     if name == "identity":
         return np.zeros_like(x)
+    if name == "perm_k":  # n x_j with probability 1/n, else 0 (d >= n)
+        return x**2 * (MC_WORKERS - 1)
+    if name == "natural_dither":  # ||x||^2 (u - low)(high - u), randomised rounding between levels
+        u, low, high = natural_levels(x, int(arg))
+        return (x @ x) * (u - low) * (high - u)
     if name == "rand_k":  # (d/K) x_j with probability K/d, else 0
         return x**2 * (D / int(arg) - 1)
     if name == "dither":  # (||x||/s)^2 (u - l)(l + 1 - u), THEORY.md 1.2 derivation notes
@@ -299,12 +342,12 @@ def test_variance_within_omega(label):
     """E||Q(x) - x||^2 / ||x||^2 <= omega (published), and equal to the exact value where known."""
     mc = monte_carlo(label)
     mean, se = mc["ratio"]
-    want = published(label, D)["omega"]
+    want = published(label, D, MC_WORKERS)["omega"]
     assert mean <= want + Z_ONE * se + 1e-12
-    if not label.startswith("natural"):
+    if name_of(label) != "natural":
         exact = exact_variance_ratio(label, mc["x"])
-        # Rand-K: omega = d/K - 1 with equality for every x (THEORY.md 1.2)
-        if label.startswith("rand_k"):
+        # Rand-K: omega = d/K - 1, PermK: omega = n - 1, with equality for every x (THEORY.md 1.2)
+        if name_of(label) in ("rand_k", "perm_k"):
             assert exact == pytest.approx(want, rel=1e-12)
         # dithering: sharper derived bound min(d/(4 s^2), sqrt(d)/s) (THEORY.md 1.2, DER)
         if label.startswith("dither"):
@@ -316,11 +359,17 @@ def test_variance_within_omega(label):
 @pytest.mark.parametrize("label", UNBIASED)
 def test_workers_draw_independently(label):
     """Independent Q_i in U(omega): E||mean_i Q_i(x) - x||^2 = (1/n) E||Q(x) - x||^2
-    (THEORY.md 1.1, A = omega/n). Shared draws across workers would give n times more."""
+    (THEORY.md 1.1, A = omega/n). Shared draws across workers would give n times more.
+    PermK is correlated on purpose: with one x for all workers, the kept sets partition
+    the coordinates and the mean is x itself (AB identity with a_i = x: 0, THEORY.md 1.2)."""
     mc = monte_carlo(label)
     mean, se = mc["avg_ratio"]
+    if label == "perm_k":
+        # (n x_j)/n in floating point: a relative rounding error of about 1e-16 per coordinate
+        assert mean <= 1e-28
+        return
     assert mean <= published(label, D)["omega"] / MC_WORKERS + Z_ONE * se + 1e-12
-    if not label.startswith("natural"):
+    if name_of(label) != "natural":
         exact = exact_variance_ratio(label, mc["x"]) / MC_WORKERS
         assert abs(mean - exact) <= z_two(1) * se + 1e-12
 
@@ -343,6 +392,39 @@ def test_dither_mean_nnz(label):
     exact = float(np.minimum(1.0, s * np.abs(x) / np.linalg.norm(x)).sum())
     assert mean <= published(label, D)["density"] + Z_ONE * se
     assert abs(mean - exact) <= z_two(1) * se
+
+
+@pytest.mark.parametrize("label", ["natural_dither:1", "natural_dither:3"])
+def test_natural_dither_mean_nnz(label):
+    """E nnz = #{u_j >= 2^(1-s)} + sum over the others of u_j / 2^(1-s) (rounded up to the
+    smallest level with that probability), <= min(d, 2^(s-1)(2^(s-1) + sqrt d)) (THEORY.md 1.2)."""
+    mc = monte_carlo(label)
+    mean, se = mc["nnz"]
+    s = int(label.partition(":")[2])
+    u, low, high = natural_levels(mc["x"], s)
+    exact = float(np.where(low > 0, 1.0, u / high).sum())
+    assert mean <= published(label, D)["density"] + Z_ONE * se
+    assert abs(mean - exact) <= z_two(1) * se
+
+
+@pytest.mark.parametrize("s", [1, 3, 8])
+def test_natural_dither_outputs_neighbouring_levels(s):
+    """|Q(x)_j| / ||x|| is one of the two levels around |x_j|/||x|| (Horvath et al. 2019),
+    the sign is kept, and x on the levels is reproduced."""
+    c = make_compressor(f"natural_dither:{s}", D)
+    v = block(30)
+    norms = np.linalg.norm(v, axis=-1, keepdims=True)
+    for round_ in range(10):
+        out, _ = c.compress(v, KEYS, round_)
+        level = np.abs(out) / norms
+        _, low, high = natural_levels(v, s)
+        # rtol 1e-14: ||x|| is computed as max|x_j| * ||x / max|x_j|||, a few roundings apart
+        assert np.all(np.isclose(level, low, rtol=1e-14, atol=0) | np.isclose(level, high, rtol=1e-14))
+        assert np.all((np.sign(out) == np.sign(v)) | (out == 0))
+    on_levels = np.zeros((B, N, D))
+    on_levels[..., :4] = [0.5, -0.5, 0.5, 0.5]  # ||x|| = 1, every u_j = 1/2, a level for s >= 2
+    if s >= 2:
+        np.testing.assert_allclose(c.compress(on_levels, KEYS, 0)[0], on_levels, rtol=1e-15, atol=0)
 
 
 # ----------------------------------------------------------------------------- Top-K, natural
@@ -398,6 +480,115 @@ def test_natural_is_identity_on_powers_of_two():
         np.testing.assert_array_equal(c.compress(v, KEYS, round_)[0], v)
 
 
+# ----------------------------------------------------------------------------- PermK
+
+# (d, n): n divides d; d padded (13 = 3*5 - 2); n = d; d divides n; n padded (7 workers, d = 3 -> 9).
+PERM_CASES = [(12, 3), (13, 3), (5, 5), (3, 6), (3, 7)]
+
+
+def perm_ab(d: int, n: int) -> tuple[float, float]:
+    """AB constants of PermK, written out here. d >= n: A = B = 1 (THEORY.md 1.2, DER + MC);
+    d < n with d | n: A = B = (d-1)/(n-1) (THEORY.md 1.2, DER + MC); d < n otherwise: pad the
+    workers to n' = d ceil(n/d) with zero vectors, apply the d | n' identity to them and rescale
+    by n'/n: B = (d-1)/(n'-1), A = B n'/n (derived here, checked by the Monte Carlo below)."""
+    if d >= n:
+        return 1.0, 1.0
+    padded = d * math.ceil(n / d)
+    b = (d - 1) / (padded - 1)
+    return b * padded / n, b
+
+
+def perm_draws(d: int, n: int, a: np.ndarray, *, keys: int, rounds: int) -> np.ndarray:
+    """C_i(a_i) of PermK for ``keys`` trajectories x ``rounds`` rounds: (keys*rounds, n, d)."""
+    c = build("perm_k", d, n)
+    ks = trajectory_keys(np.arange(5000, 5000 + keys))
+    v = np.broadcast_to(a, (keys, n, d))
+    return np.concatenate([c.compress(v, ks, r)[0] for r in range(rounds)])
+
+
+@pytest.mark.parametrize("d,n", PERM_CASES)
+def test_perm_k_ab_identity(d, n):
+    """E||(1/n) sum_i C_i(a_i) - abar||^2 = A (1/n) sum_i ||a_i||^2 - B ||abar||^2 with equality
+    (Szlendak, Tyurin, Richtarik 2022; THEORY.md 1.2). Two-sided z-test with the sample
+    standard error of 2e4 draws, false alarm 1e-6 per case (z = 4.9)."""
+    c = build("perm_k", d, n)
+    A, B = perm_ab(d, n)
+    assert c.ab == pytest.approx((A, B), rel=1e-14)  # the same closed forms
+    assert A >= B >= 0
+    rng = np.random.default_rng(40 + d + n)
+    a = rng.standard_normal((n, d)) + rng.standard_normal(d)  # a shared part: abar != 0
+    abar = a.mean(axis=0)
+    exact = A * np.mean(np.sum(a * a, axis=1)) - B * (abar @ abar)
+    out = perm_draws(d, n, a, keys=2000, rounds=10)
+    err = np.sum((out.mean(axis=1) - abar) ** 2, axis=-1)
+    se = err.std(ddof=1) / math.sqrt(err.size)
+    assert abs(err.mean() - exact) <= z_two(1) * se
+
+
+@pytest.mark.parametrize("d,n", PERM_CASES)
+def test_perm_k_each_worker_unbiased_with_omega_equality(d, n):
+    """E C_i(x) = x for every worker (z-test per coordinate and worker with the exact variance
+    (s - 1) x_j^2, s = n or d the scale; Bonferroni over n d), and E||C_i(x) - x||^2 =
+    omega ||x||^2 with omega = s - 1 (THEORY.md 1.2: U(n-1), or U(d-1) when n >= d)."""
+    c = build("perm_k", d, n)
+    scale = n if d >= n else d
+    assert c.omega == scale - 1 and c.unbiased
+    rng = np.random.default_rng(60 + d + n)
+    x = rng.standard_normal(d)
+    out = perm_draws(d, n, np.broadcast_to(x, (n, d)), keys=2000, rounds=10)
+    se = np.sqrt((scale - 1) * x**2 / out.shape[0])
+    # atol: rounding of sums of 2e4 terms
+    assert np.all(np.abs(out.mean(axis=0) - x) <= z_two(n * d) * se + 1e-12)
+    ratio = np.sum((out - x) ** 2, axis=-1) / (x @ x)  # (draws, n)
+    se_ratio = ratio.std(ddof=1) / math.sqrt(ratio.size)
+    assert abs(ratio.mean() - (scale - 1)) <= z_two(1) * se_ratio
+
+
+@pytest.mark.parametrize("d,n", PERM_CASES)
+def test_perm_k_kept_sets_come_from_one_shared_permutation(d, n):
+    """The workers of a trajectory share one permutation: for d >= n their kept sets are
+    disjoint and cover the d coordinates (ceil(d/n) padded slots each, the phantom ones
+    unsent); for d < n each worker sends one coordinate and every coordinate is sent by
+    n/d workers (d | n) or by ceil(n/d) padded workers minus the phantoms. The sets do not
+    depend on the data, and the bits are 32 per value sent (no index bits)."""
+    c = build("perm_k", d, n)
+    rng = np.random.default_rng(80 + d + n)
+    keys = trajectory_keys(np.arange(50))
+    for round_ in range(5):
+        v = rng.standard_normal((50, n, d))
+        out, bits = c.compress(v, keys, round_)
+        kept = out != 0
+        np.testing.assert_array_equal(kept, c.compress(v + 1.0, keys, round_)[0] != 0)  # data-free
+        np.testing.assert_array_equal(out[kept], (c.scale * v)[kept])
+        np.testing.assert_array_equal(bits, 32.0 * kept.sum(axis=-1))
+        per_coord, per_worker = kept.sum(axis=1), kept.sum(axis=2)
+        if d >= n:
+            q = math.ceil(d / n)
+            assert np.all(per_coord == 1)  # disjoint and covering
+            assert np.all((per_worker >= q - (q * n - d)) & (per_worker <= q))
+            np.testing.assert_array_equal(bits.sum(axis=1), 32.0 * d)
+        else:
+            q = math.ceil(n / d)
+            assert np.all(per_worker == 1)
+            assert np.all((per_coord >= q - (q * d - n)) & (per_coord <= q))
+            if n % d == 0:
+                assert np.all(per_coord == n // d)
+    assert c.nominal_bits == pytest.approx(32 * (d / n if d >= n else 1), rel=1e-14)
+
+
+def test_perm_k_needs_the_worker_count():
+    with pytest.raises(InputError, match=r"^compressor: perm_k needs the number of workers \(n_workers\)"):
+        make_compressor("perm_k", D)
+    with pytest.raises(InputError, match=r"^job\.uplink: perm_k needs"):
+        make_compressor({"name": "perm_k"}, D, key="job.uplink")
+    with pytest.raises(ValueError, match="n_workers must be an integer >= 1, got 0"):
+        make_compressor("perm_k", D, n_workers=0)
+    c = build("perm_k")
+    with pytest.raises(ValueError, match="built for 3 workers, got a block of 2"):
+        c.compress(block(1, (B, 2, D)), KEYS, 0)
+    assert build("rand_k:3", D, 99).label() == "rand_k:3"  # the others ignore n_workers
+
+
 # ----------------------------------------------------------------------------- parsing
 
 
@@ -412,11 +603,13 @@ def test_natural_is_identity_on_powers_of_two():
         ({"name": "dither", "levels": 2.0}, {"name": "dither", "levels": 2}),
         ("natural", {"name": "natural"}),
         ({"name": "identity"}, {"name": "identity"}),
+        ("natural_dither:3", {"name": "natural_dither", "levels": 3}),
+        ("perm_k", {"name": "perm_k"}),
     ],
 )
 def test_parse_accepts(spec, want):
     assert parse_spec(spec) == want
-    c = make_compressor(spec, D)
+    c = build(spec)
     assert c.spec() == want and type(c.spec().get("k", 0)) is int
 
 
@@ -436,6 +629,9 @@ def test_parse_accepts(spec, want):
         ("dither:0", "compressor.levels: must be an integer >= 1, got 0"),
         ("natural:3", "compressor: natural takes no parameter"),
         ({"name": "natural", "k": 3}, "compressor.k: unknown key for natural"),
+        ("perm_k:3", "compressor: perm_k takes no parameter"),
+        ("natural_dither", "compressor.levels: missing"),
+        ("natural_dither:0", "compressor.levels: must be an integer >= 1, got 0"),
         (42, "compressor: must be text"),
     ],
 )

@@ -212,7 +212,7 @@ ERRORS = [
     (dict(target={"grad_norm_sq": 0}), "target.grad_norm_sq: must be a number > 0, got 0"),
     (dict(target={"grad_norm_sq": float("nan")}), "target.grad_norm_sq: must be a number > 0, got nan"),
     (dict(target={"grad_norm_sq": 1, "relative": "yes"}), "target.relative: must be true or false, got 'yes'"),
-    (dict(model="logreg"), "model: must be one of logistic_nonconvex, least_squares, got 'logreg'"),
+    (dict(model="logreg"), "model: must be one of logistic_nonconvex, least_squares, softmax, mlp, plugin, got 'logreg'"),
     (dict(model=None), "model: required"),
     (dict(data=None), "data: required"),
     (dict(data={"format": "csv"}), "data.path: required"),
@@ -234,12 +234,12 @@ ERRORS = [
     (dict(modle="least_squares"), "modle: unknown key (did you mean 'model'?)"),
     (dict(probe={"safety": 0.5}), "probe.safety: must be a number >= 1, got 0.5"),
     (dict(probe={"runs": 0}), "probe.runs: must be an integer >= 1, got 0"),
-    (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, objective, data, workers, "
-                  "target, budget, network, probe, search, start)"),
+    (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, objective, plugin, data, workers, "
+                  "target, budget, mlp, network, probe, search, start)"),
     (dict(objective="joules"), "objective: must be one of bits, seconds, got 'joules'"),
     (dict(network={"uplink_bandwidth": 0}), "network.uplink_bandwidth: must be a number > 0, got 0"),
     (dict(search={"methods": ["marina", "sgd"]}),
-     "search.methods: must be a list of distinct values from gd, dcgd, diana, marina, ef21, got ['marina', 'sgd']"),
+     "search.methods: must be a list of distinct values from gd, dcgd, diana, marina, pp_marina, ef21, got ['marina', 'sgd']"),
     (dict(search={"step_range": [8, 2]}),
      "search.step_range: must be a pair [low, high] with low <= high, each a number > 0, got [8, 2]"),
     (dict(data="nope.svm"), "data.path: file not found: {folder}/nope.svm"),
@@ -302,7 +302,7 @@ def test_all_problems_of_a_file_reported_together(folder):
     assert err.source == str(folder / "job.yaml") and err.exit_code == 2
     expected = {
         f"data.path: file not found: {folder}/missing.svm",
-        "model: must be one of logistic_nonconvex, least_squares, got 'logreg'",
+        "model: must be one of logistic_nonconvex, least_squares, softmax, mlp, plugin, got 'logreg'",
         "workers.cout: unknown key (did you mean 'count'?)",
         "workers.count: required",
         "workers.seed: must be an integer >= 0, got True",

@@ -6,6 +6,7 @@ THEORY.md (each check names its paper), not from bittune.theory's code.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 
@@ -17,7 +18,7 @@ from bittune.compressors import make_compressor
 from bittune.constants import Constants
 from bittune.methods import METHODS
 from bittune.simulate import simulate
-from bittune.theory import RULES, measured_contraction, theory_point, theory_table
+from bittune.theory import RULES, ab_step_size, measured_contraction, theory_point, theory_table
 from bittune.problems import problem_from_arrays
 from conftest import breast_cancer_problem
 
@@ -114,6 +115,72 @@ def test_marina_dither_uses_expected_density():
     assert pt.step_size == pytest.approx(1 / (2.0 + 2.1 * math.sqrt((1 - p) * omega / (p * 3))), rel=RTOL)
 
 
+def test_marina_perm_k_uses_the_ab_form():
+    # Szlendak, Tyurin, Richtarik 2022 (from memory; THEORY.md 2.8): PermK has A = B = 1 and
+    # p = zeta/d = 1/n (d >= n), so gamma = 1/(L_- + L_pm sqrt(n - 1)); L_pm, not L_+, counts.
+    c = dataclasses.replace(_hand_constants(), L_pm=0.5)  # n = 3, d = 10, L_- = 2
+    pt = theory_point("marina", "perm_k", c, target=EPS)
+    assert pt.sync_probability == pytest.approx(1 / 3, rel=RTOL)
+    assert pt.step_size == pytest.approx(1 / (2.0 + 0.5 * math.sqrt(2)), rel=RTOL)
+    K = math.ceil(2 * 1.5 / (pt.step_size * EPS))
+    assert pt.predicted_rounds == K
+    # THEORY.md 2.8 bits: 32 d + K [(1/n) 32 d + (1 - 1/n) 32 d/n]
+    assert pt.predicted_bits_per_worker == pytest.approx(320 + K * (320 / 3 + (2 / 3) * 320 / 3), rel=RTOL)
+    # identical workers (L_pm = 0): GD's step while each worker sends d/n floats (THEORY.md 2.8)
+    same = dataclasses.replace(c, L_pm=0.0)
+    assert theory_point("marina", "perm_k", same, target=EPS).step_size == pytest.approx(1 / 2.0, rel=RTOL)
+    # n >= d with d | n (d = 2, n = 4): A = B = (d-1)/(n-1) = 1/3, p = zeta/d = 1/2 (THEORY.md 1.2)
+    c4 = dataclasses.replace(_hand_constants(L_workers=(1.0, 2.0, 3.0, 2.0), dim=2), L_pm=0.5)
+    pt4 = theory_point("marina", "perm_k", c4, target=EPS)
+    assert pt4.sync_probability == pytest.approx(0.5, rel=RTOL)
+    assert pt4.step_size == pytest.approx(1 / (2.0 + math.sqrt(1.0 * (1 / 3) * 0.5**2)), rel=RTOL)
+    with pytest.raises(ValueError, match=r"constants\.L_pm must be"):
+        theory_point("marina", "perm_k", dataclasses.replace(c, L_pm=float("nan")), target=EPS)
+
+
+@pytest.mark.parametrize("spec", ["rand_k:1", "rand_k:4", "dither:2", "natural", "natural_dither:3"])
+def test_ab_form_with_independent_constants_recovers_marina(spec):
+    # THEORY.md 1.1 / 2.8: independent Q_i in U(omega) satisfy AB with A = omega/n, B = 0, and the
+    # AB step then equals the refined MARINA step 1/(L_- + L_+ sqrt((1-p) omega/(p n))).
+    c = _hand_constants(dim=40)
+    comp = make_compressor(spec, 40)
+    pt = theory_point("marina", comp, c, target=EPS)
+    ab = ab_step_size(L_minus=c.L, L_plus=c.L_plus, L_pm=c.L_pm, p=pt.sync_probability,
+                      A=comp.omega / c.n_workers, B=0.0)
+    assert ab == pytest.approx(pt.step_size, rel=RTOL)
+    with pytest.raises(ValueError, match="A >= B >= 0"):
+        ab_step_size(L_minus=1.0, L_plus=1.0, L_pm=1.0, p=0.5, A=0.5, B=1.0)
+    with pytest.raises(ValueError, match=r"p must be in \(0, 1\]"):
+        ab_step_size(L_minus=1.0, L_plus=1.0, L_pm=1.0, p=0.0, A=1.0, B=1.0)
+
+
+@pytest.mark.parametrize("r", [None, 1, 2, 3])
+def test_pp_marina_closed_form(r):
+    # Gorbunov et al. 2021, Thm 4.1 (from memory; THEORY.md 2.6): p = zeta r/(d n),
+    # gamma = 1/(L + L_QM sqrt((1-p)(1+omega)/(p r))); bits per round over all clients
+    # p n 32 d + (1-p) r bits(Q), i.e. per worker p 32 d + (1-p) r bits(Q)/n.
+    c = _hand_constants()
+    d, n, k, L_qm = 10, 3, 2, math.sqrt(14 / 3)
+    rr = n if r is None else r
+    omega, p = d / k - 1, k * rr / (d * n)
+    gamma = 1 / (2.0 + L_qm * math.sqrt((1 - p) * (1 + omega) / (p * rr)))
+    pt = theory_point("pp_marina", f"rand_k:{k}", c, target=EPS, clients=r)
+    assert pt.clients == rr and pt.method_params()["clients"] == rr
+    assert pt.sync_probability == pytest.approx(p, rel=RTOL)
+    assert pt.step_size == pytest.approx(gamma, rel=RTOL)
+    K = math.ceil(2 * 1.5 / (gamma * EPS))
+    assert pt.predicted_rounds == K
+    assert pt.predicted_bits_per_worker == pytest.approx(32 * d + K * (p * 32 * d + (1 - p) * rr * 32 * k / n),
+                                                         rel=RTOL)
+
+
+def test_pp_marina_p_is_clipped_to_one():
+    # zeta r/(d n) > 1 cannot happen for zeta <= d and r <= n; identity (zeta = d), r = n gives
+    # p = 1: every round is dense and the step is 1/L (THEORY.md 2.6 with p = 1).
+    pt = theory_point("pp_marina", "identity", _hand_constants(), target=EPS)
+    assert pt.sync_probability == 1.0 and pt.step_size == pytest.approx(1 / 2.0, rel=RTOL)
+
+
 @pytest.mark.parametrize("spec,alpha", [("top_k:2", 0.2), ("top_k:7", 0.7), ("rand_k:2", 1 / 5), ("identity", 1.0)])
 def test_ef21_closed_form(spec, alpha):
     # Richtarik, Sokolov, Fatkhullin 2021, Thm 1 (from memory; THEORY.md 2.9):
@@ -156,6 +223,14 @@ def test_ef21_takes_a_contraction_override():
     (dict(method="marina", compressor="top_k:2"), "marina needs an unbiased"),
     (dict(method="diana", compressor="top_k:2"), "diana needs an unbiased"),
     (dict(method="marina", compressor="rand_k:2", contraction=0.5), "ef21 only"),
+    (dict(method="marina", compressor="rand_k:2", clients=2), "pp_marina only"),
+    (dict(method="pp_marina", compressor="rand_k:2", clients=4), r"clients must be an integer in \[1, 3\]"),
+    (dict(method="pp_marina", compressor="rand_k:2", clients=0), "clients must be"),
+    (dict(method="pp_marina", compressor="top_k:2"), "pp_marina needs an unbiased"),
+    (dict(method="pp_marina", compressor="perm_k"), "pp_marina needs independent compressors"),
+    (dict(method="dcgd", compressor="perm_k"), "dcgd needs independent compressors"),
+    (dict(method="diana", compressor="perm_k"), "diana needs independent compressors"),
+    (dict(method="marina", compressor=make_compressor("perm_k", 10, n_workers=4)), "built for 4 workers"),
     (dict(method="gd", compressor="identity", target=0.0), "target must be"),
     (dict(method="gd", compressor="identity", target=float("nan")), "target must be"),
 ])
@@ -180,14 +255,17 @@ def test_table_pairs_methods_with_fitting_compressors():
     rows = theory_table(c, dim=200, target=EPS)
     by_method = {m: [r.compressor for r in rows if r.method == m] for m in RULES}
     assert by_method["gd"] == ["identity"]
-    for m in ("dcgd", "diana", "marina"):
+    for m in ("dcgd", "diana", "marina", "pp_marina"):
         assert by_method[m] and not any(s.startswith("top_k") for s in by_method[m])
         assert "identity" not in by_method[m]
+        assert "natural_dither:3" in by_method[m]
+        assert ("perm_k" in by_method[m]) is (m == "marina")  # the only rule for correlated compressors
+    assert all(r.clients == 3 for r in rows if r.method == "pp_marina")
     assert any(s.startswith("top_k") for s in by_method["ef21"])
     assert any(s.startswith("rand_k") for s in by_method["ef21"])
     doc = json.loads(json.dumps([r.to_dict() for r in rows]))
     assert set(doc[0]) == {"method", "compressor", "step_size", "sync_probability", "predicted_rounds",
-                           "predicted_bits_per_worker", "shift_rate", "source"}
+                           "predicted_bits_per_worker", "shift_rate", "clients", "source"}
     # A given list is filtered per method: GD takes identity only, MARINA unbiased ones, EF21 any.
     rows = theory_table(c, target=EPS, compressors=["identity", "top_k:20"], methods=("gd", "marina", "ef21"))
     assert [(r.method, r.compressor) for r in rows] == [
@@ -323,7 +401,9 @@ def _generated_problem():
 PROBLEMS = {"breast_cancer": lambda: breast_cancer_problem(), "generated_lsq": _generated_problem}
 CASES = [("gd", "identity", False), ("diana", "rand_k:10", False), ("marina", "rand_k:6", False),
          ("ef21", "top_k:6", False), ("marina", "dither:2", False), ("ef21", "rand_k:6", False),
-         ("ef21", "top_k:6", True)]  # True: alpha measured on the local gradients at x^0
+         ("ef21", "top_k:6", True),  # True: alpha measured on the local gradients at x^0
+         ("marina", "perm_k", False), ("pp_marina", "rand_k:6", False), ("pp_marina", "rand_k:6", 2),
+         ("pp_marina", "natural_dither:2", False)]  # an integer: PP-MARINA's r
 
 
 @pytest.fixture(scope="module", params=sorted(PROBLEMS))
@@ -337,18 +417,22 @@ def test_simulation_stays_under_the_published_bound(problem_and_constants, metho
     """E||grad f(x_hat)||^2 <= 2 Delta0/(gamma K), x_hat uniform over x^0..x^{K-1}.
 
     Bounds: GD, Nesterov 2004 sec. 1.2.3; DIANA, THEORY.md 2.3 (derived, H^0 = 0); MARINA,
-    Gorbunov et al. 2021 Thm 2.1 (refined form); EF21, Richtarik et al. 2021 Thm 1 (G^0 = 0).
+    Gorbunov et al. 2021 Thm 2.1 (refined form); MARINA with PermK, Szlendak et al. 2022 (AB
+    theorem, L_pm <= L_QM used, THEORY.md 3.1); PP-MARINA, Gorbunov et al. 2021 Thm 4.1; EF21,
+    Richtarik et al. 2021 Thm 1 (G^0 = 0).
     With a measured alpha (THEORY.md 2.9) EF21's bound is a heuristic, not a theorem: checked too.
     """
     problem, c = problem_and_constants
     target = 0.01 * c.grad_sq0  # 1% of the starting ||grad f||^2 (common practice, no source)
-    comp = make_compressor(spec, problem.dim)
+    comp = make_compressor(spec, problem.dim, n_workers=problem.n_workers)
+    clients = measure if method == "pp_marina" and measure else None
+    measure = measure is True
     alpha = None
     if measure:
         grads, _ = problem.local_grads(np.zeros((1, problem.dim)))
         alpha = measured_contraction(comp, grads)
         assert alpha > comp.alpha  # real gradients contract better than the worst case K/d
-    pt = theory_point(method, comp, c, target=target, contraction=alpha)
+    pt = theory_point(method, comp, c, target=target, contraction=alpha, clients=clients)
     K = pt.predicted_rounds
     seeds = range(20)
     runs = simulate(problem, method=method, compressor=comp, step_size=pt.step_size, seeds=seeds,
@@ -362,8 +446,9 @@ def test_simulation_stays_under_the_published_bound(problem_and_constants, metho
     assert bound[-1] <= target * (1 + 1e-12)  # K = ceil(2 Delta0/(gamma eps)) reaches the target
     # No statistical margin: the bound holds for the expectation. On these problems the
     # 20-seed mean stays below 0.6 of the bound for the random methods (0.72 for GD, which is
-    # deterministic) at every horizon, and its relative standard error is at most 5% (MARINA;
-    # under 1.1% elsewhere): the gap is over 8 standard errors, so seed noise cannot flip it.
+    # deterministic) at every horizon, and its relative standard error is at most 5% (MARINA and
+    # PP-MARINA with Rand-K, 4.4% measured for PP-MARINA; under 1.1% elsewhere): the gap is over
+    # 8 standard errors, so seed noise cannot flip it.
     worst = int(np.argmax(measured / bound))
     assert np.all(measured <= bound), (worst + 1, measured[worst], bound[worst])
     # Bits: the engine sends the dense start in round 0 and compressed messages in rounds
@@ -372,13 +457,15 @@ def test_simulation_stays_under_the_published_bound(problem_and_constants, metho
     per_round = comp.nominal_bits
     if method == "gd":
         assert np.allclose(sim_bits, pt.predicted_bits_per_worker, rtol=1e-12)
-    elif method == "marina":
+    elif method in ("marina", "pp_marina"):
         p = pt.sync_probability
-        per_round = p * 32 * problem.dim + (1 - p) * comp.nominal_bits
-        if comp.name == "rand_k":
+        # mean over workers of a compressed round: every worker sends (MARINA), or r of n draws
+        compressed = comp.nominal_bits * (1 if method == "marina" else pt.clients / problem.n_workers)
+        per_round = p * 32 * problem.dim + (1 - p) * compressed
+        if comp.name in ("rand_k", "perm_k", "natural_dither"):  # fixed mean over workers (PermK: 32 d/n)
             # Coin flips: over 20 seeds x (K-1) rounds the sync count is Binomial(20 (K-1), p);
             # 5 sd of its mean keeps the false-alarm rate below 1e-6.
-            sd = math.sqrt(p * (1 - p) / (20 * (K - 1))) * (K - 1) * (32 * problem.dim - comp.nominal_bits)
+            sd = math.sqrt(p * (1 - p) / (20 * (K - 1))) * (K - 1) * (32 * problem.dim - compressed)
             assert abs(sim_bits.mean() - (pt.predicted_bits_per_worker - per_round)) <= 5 * sd
         else:  # dither's realised bits are at most its expected-cost figure (QSGD nnz bound)
             assert sim_bits.mean() <= pt.predicted_bits_per_worker

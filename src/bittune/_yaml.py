@@ -12,6 +12,7 @@ import math
 import numbers
 import os
 import re
+import reprlib
 import stat
 import tempfile
 from dataclasses import dataclass
@@ -25,7 +26,7 @@ from bittune.errors import InputError
 
 __all__ = [
     "load_yaml", "parse_yaml", "read_bytes", "dump_yaml", "atomic_write_text",
-    "REQUIRED", "Param", "check_mapping", "unknown_key", "show",
+    "REQUIRED", "Param", "check_mapping", "unknown_key", "show", "key_text",
 ]
 
 # YAML 1.2 core schema float (YAML 1.2.2 spec, section 10.3.2 "Core Schema"):
@@ -44,12 +45,18 @@ class _StrictLoader(yaml.SafeLoader):
     source = "<yaml>"
 
     def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict:
+        if not isinstance(node, yaml.MappingNode):  # e.g. ``!!set x``: the base class says so
+            return super().construct_mapping(node, deep=deep)
         seen: dict[Any, int] = {}
         for key_node, _ in node.value:
             if key_node.tag == _MERGE_TAG or not isinstance(key_node, yaml.ScalarNode):
                 continue  # merge keys may be overridden; complex keys: the base class decides
             key = self.construct_object(key_node)
             line = key_node.start_mark.line + 1
+            try:
+                hash(key)
+            except TypeError:
+                continue  # e.g. ``!!set`` as a key: the base class reports the unhashable key
             if key in seen:
                 raise InputError(f"{self.source}:{line}: duplicate key {key!r} "
                                  f"(first at line {seen[key]})")
@@ -57,7 +64,33 @@ class _StrictLoader(yaml.SafeLoader):
         return super().construct_mapping(node, deep=deep)
 
 
+    def construct_object(self, node: yaml.Node, deep: bool = False) -> Any:
+        # PyYAML's scalar constructors turn the text of one value into a Python
+        # value and fail with plain Python errors on text such as ``!!int xx``
+        # (ValueError), an empty ``!!int`` (IndexError), ``!!bool x`` (KeyError),
+        # ``2020-13-45`` or a 5000-digit integer (Python's int-to-string limit);
+        # report them as YAML errors with the node's line.
+        try:
+            return super().construct_object(node, deep=deep)
+        except (yaml.YAMLError, InputError, RecursionError):
+            raise
+        except Exception as exc:
+            if not isinstance(node, yaml.ScalarNode):
+                raise
+            raise yaml.constructor.ConstructorError(
+                None, None, f"cannot read {show(node.value)} as {node.tag.rsplit(':', 1)[-1]}: "
+                f"{type(exc).__name__}: {exc}", node.start_mark) from None
+
+
 _StrictLoader.add_implicit_resolver("tag:yaml.org,2002:float", _FLOAT_12, list("-+.0123456789"))
+
+
+class _Dumper(yaml.SafeDumper):
+    """SafeDumper that knows the loader's YAML 1.2 floats, so it quotes the string
+    ``'1e-3'`` instead of writing a plain ``1e-3`` that would load back as a number."""
+
+
+_Dumper.add_implicit_resolver("tag:yaml.org,2002:float", _FLOAT_12, list("-+.0123456789"))
 
 
 def read_bytes(path: str | os.PathLike) -> bytes:
@@ -75,7 +108,10 @@ def read_bytes(path: str | os.PathLike) -> bytes:
 
 def parse_yaml(data: bytes | str, *, source: str) -> object:
     """Parse YAML text with the strict loader; errors name ``source`` and the line."""
-    loader = _StrictLoader(data)
+    try:
+        loader = _StrictLoader(data)  # the reader checks the encoding here already
+    except yaml.YAMLError as exc:  # e.g. bytes that are not UTF-8/UTF-16, control characters
+        raise InputError(f"{source}: invalid YAML: {exc}") from None
     loader.source = source
     try:
         return loader.get_single_data()
@@ -84,8 +120,10 @@ def parse_yaml(data: bytes | str, *, source: str) -> object:
         where = f"{source}:{mark.line + 1}" if mark is not None else source
         what = "; ".join(s for s in (exc.context, exc.problem) if s)
         raise InputError(f"{where}: invalid YAML: {what}") from None
-    except yaml.YAMLError as exc:  # e.g. bytes that are not UTF-8/UTF-16
+    except yaml.YAMLError as exc:
         raise InputError(f"{source}: invalid YAML: {exc}") from None
+    except RecursionError:  # PyYAML's parser and composer recurse once per nesting level
+        raise InputError(f"{source}: invalid YAML: nested too deeply") from None
     finally:
         loader.dispose()
 
@@ -112,7 +150,7 @@ def _plain(obj: Any) -> Any:
 
 def dump_yaml(data: Any) -> str:
     """YAML text of ``data`` in its own key order; numpy values become plain numbers."""
-    return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True)
+    return yaml.dump(_plain(data), Dumper=_Dumper, sort_keys=False, allow_unicode=True)
 
 
 def _new_file_mode() -> int:
@@ -214,8 +252,9 @@ class Param:
         if self.kind == "choices":
             if isinstance(value, str):
                 value = [value]
-            ok = (isinstance(value, list) and len(value) > 0 and len(set(map(str, value))) == len(value)
-                  and all(isinstance(v, str) and v in self.options for v in value))
+            ok = (isinstance(value, list) and len(value) > 0
+                  and all(isinstance(v, str) and v in self.options for v in value)
+                  and len(set(value)) == len(value))
             return ok, list(value) if ok else value
         if self.kind == "range":
             if not (isinstance(value, list) and len(value) == 2):
@@ -227,25 +266,32 @@ class Param:
         if self.kind == "bool":
             return isinstance(value, (bool, np.bool_)), bool(value)
         if self.kind in ("str", "choice"):
-            if isinstance(value, numbers.Integral) and not isinstance(value, (bool, np.bool_)):
+            if (isinstance(value, numbers.Integral) and not isinstance(value, (bool, np.bool_))
+                    and abs(int(value)) < 10**18):
                 value = str(value)  # a column named 2020 loads as an int
             ok = isinstance(value, str) and value.strip() != ""
             return ok and (self.kind == "str" or value in self.options), value
         number = _as_number(value)
-        if number is None or not math.isfinite(number):
+        if number is None:
             return False, value
-        if self.kind == "int":
-            if not float(number).is_integer():
-                return False, value
-            number = int(number)
+        if isinstance(number, int):  # exact: an int too large for a float stays an int here
+            if self.kind != "int":
+                if abs(number) > _FLOAT_MAX:
+                    return False, value
+                number = float(number)
+        elif not math.isfinite(number) or (self.kind == "int" and not number.is_integer()):
+            return False, value
         else:
-            number = float(number)
+            number = int(number) if self.kind == "int" else float(number)
         lo_in, hi_in = self.closed in ("both", "left"), self.closed in ("both", "right")
         if self.low is not None and (number < self.low or (number == self.low and not lo_in)):
             return False, value
         if self.high is not None and (number > self.high or (number == self.high and not hi_in)):
             return False, value
         return True, number
+
+
+_FLOAT_MAX = int(np.finfo(np.float64).max)
 
 
 def _as_number(value: Any) -> float | int | None:
@@ -265,15 +311,34 @@ def _as_number(value: Any) -> float | int | None:
     return None
 
 
+class _ShortRepr(reprlib.Repr):
+    """``reprlib`` bounds the work on huge or deeply shared values (a YAML alias
+    bomb); integers past Python's int-to-string limit are described, not printed."""
+
+    def repr_int(self, x: int, level: int) -> str:
+        if x.bit_length() > 256:
+            return f"<integer of {x.bit_length()} bits>"
+        return super().repr_int(x, level)
+
+
+_SHORT = _ShortRepr()
+_SHORT.maxstring = _SHORT.maxother = _SHORT.maxlong = 80
+
+
 def show(value: Any, limit: int = 60) -> str:
     """Short repr of a user's value for error messages."""
-    text = repr(value)
+    text = _SHORT.repr(value)
     return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def key_text(key: Any) -> str:
+    """A mapping key as it appears in a key path: strings as they are, anything else shown."""
+    return key if isinstance(key, str) else show(key)
 
 
 def unknown_key(path: str, key: Any, known: list[str]) -> str:
     """``workers.cout: unknown key (did you mean 'count'?)``."""
-    close = difflib.get_close_matches(str(key), known, n=1)
+    close = difflib.get_close_matches(key_text(key), known, n=1)
     hint = f"did you mean {close[0]!r}?" if close else "expected one of " + ", ".join(known)
     return f"{path}: unknown key ({hint})"
 
@@ -289,7 +354,7 @@ def check_mapping(
     """
     values: dict[str, Any] = {}
     if not allow_unknown:
-        problems.extend(unknown_key(prefix + str(k), k, list(schema))
+        problems.extend(unknown_key(prefix + key_text(k), k, list(schema))
                         for k in mapping if k not in schema)
     for key, param in schema.items():
         value = mapping.get(key)

@@ -15,18 +15,27 @@ import numpy as np
 
 from . import __version__
 from .errors import EXIT, BittuneError, InputError
+from .job import METHOD_NAMES
 
 __all__ = ["main", "build_parser"]
 
 
+def _load_job(args: argparse.Namespace):
+    """The job file, with the --allow-code permission attached."""
+    from dataclasses import replace
+
+    from .job import load_job
+
+    return replace(load_job(args.job), allow_code=bool(getattr(args, "allow_code", False)))
+
+
 def _cmd_replay(args: argparse.Namespace) -> int:
     from .config import load_config
-    from .job import load_job
     from .replay import replay, summarize
     from .workspace import open_job
 
     cfg = load_config(args.config)
-    ws = open_job(load_job(args.job))
+    ws = open_job(_load_job(args))
     runs = replay(ws, cfg, seeds=range(args.seed, args.seed + args.seeds))
     doc = summarize(runs)
     doc["config"] = str(args.config)
@@ -51,11 +60,10 @@ def _cmd_replay(args: argparse.Namespace) -> int:
 
 def _cmd_probe(args: argparse.Namespace) -> int:
     from ._yaml import atomic_write_text, dump_yaml
-    from .job import load_job
     from .probe import probe_workspace
     from .workspace import open_job
 
-    ws = open_job(load_job(args.job))
+    ws = open_job(_load_job(args))
     constants, report = probe_workspace(ws)
     doc = _probe_doc(ws, constants, report)
     if args.output:
@@ -127,17 +135,17 @@ def _print_probe(ws, constants, report) -> None:
 
 def _cmd_theory(args: argparse.Namespace) -> int:
     from .compressors import make_compressor
-    from .job import load_job
     from .probe import probe_workspace
     from .theory import theory_table
     from .workspace import open_job
 
-    ws = open_job(load_job(args.job))
+    ws = open_job(_load_job(args))
     d = ws.problem.dim
-    methods = tuple(args.method) if args.method else ("gd", "dcgd", "diana", "marina", "ef21")
+    methods = tuple(args.method) if args.method else METHOD_NAMES
     compressors = None
     if args.compressor:
-        compressors = [make_compressor(spec, d, key="--compressor").label() for spec in args.compressor]
+        compressors = [make_compressor(spec, d, key="--compressor", n_workers=ws.problem.n_workers).label()
+                       for spec in args.compressor]
     constants, report = probe_workspace(ws)
     grads, _ = ws.problem.local_grads(report.points)
     rows = theory_table(constants, target=ws.target, methods=methods, compressors=compressors,
@@ -167,7 +175,8 @@ def _cmd_tune(args: argparse.Namespace) -> int:
     if args.workers_only and not args.storage:
         raise InputError("--workers-only: needs --storage (a database the workers can reach)")
     result = tune(args.job, output=args.output, trials=args.trials, jobs=args.jobs, seed=args.seed,
-                  run_dir=args.run_dir, storage=args.storage, report_dir=args.report, workers_only=args.workers_only)
+                  run_dir=args.run_dir, storage=args.storage, report_dir=args.report, workers_only=args.workers_only,
+                  allow_code=args.allow_code)
     cfg, exp = result.config, result.config["expected"]
     if args.json:
         _emit_json({"config": str(args.output), "exit_code": result.exit_code, "study": result.study_name,
@@ -199,7 +208,7 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     from .tune import worker_main
 
     ran = worker_main(args.job, args.storage, args.study, budget=args.trials, sampler_seed=args.seed,
-                      index=args.index)
+                      index=args.index, allow_code=args.allow_code)
     if args.json:
         _emit_json({"study": args.study, "trials_run": ran})
     else:
@@ -225,7 +234,7 @@ def _cmd_retune(args: argparse.Namespace) -> int:
     result = retune(args.job, previous=args.previous, output=args.output, trials=args.trials, jobs=args.jobs,
                     seed=args.seed, run_dir=args.run_dir, storage=args.storage, history=args.history,
                     margin=args.margin, level=args.level, drift_threshold=args.drift_threshold,
-                    report_dir=args.report)
+                    report_dir=args.report, allow_code=args.allow_code)
     section = result.config["retune"]
     if args.json:
         _emit_json({"decision": result.decision, "exit_code": result.exit_code, "reason": section["reason"],
@@ -344,12 +353,17 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("theory", help="theory-safe settings and predicted bits for every method x compressor")
     p.add_argument("job", help="job file (YAML)")
-    p.add_argument("--method", action="append", choices=["gd", "dcgd", "diana", "marina", "ef21"],
+    p.add_argument("--method", action="append", choices=list(METHOD_NAMES),
                    help="only this method (repeatable)")
     p.add_argument("--compressor", action="append", metavar="SPEC",
-                   help="only this compressor: identity, rand_k:K, top_k:K, dither:S, natural (repeatable)")
+                   help="only this compressor: identity, rand_k:K, top_k:K, dither:S, natural, natural_dither:S, "
+                        "perm_k (repeatable)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.set_defaults(func=_cmd_theory)
+    for name, parser in sub.choices.items():
+        if name not in ("report", "history"):
+            parser.add_argument("--allow-code", action="store_true",
+                                help="allow a job's model plugin (Python code named in the job) to be imported")
     return ap
 
 

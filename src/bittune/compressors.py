@@ -14,6 +14,12 @@ E||C(x) - x||^2 <= (1 - alpha) ||x||^2. For an unbiased compressor ``alpha`` is
 
 Bit costs (THEORY.md 1.2, our cost model): 32-bit floats, ceil(log2 d) bits per
 index when indices depend on the data.
+
+Correlated compressors (THEORY.md 1.1, the "AB inequality"): PermK's workers
+share one random permutation per (trajectory, round), so its messages are not
+independent across workers. Such a compressor has ``correlated = True`` and
+``ab = (A, B)``; it needs the worker count (``n_workers``) and compresses
+blocks whose worker axis is exactly that count.
 """
 
 from __future__ import annotations
@@ -25,11 +31,11 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from bittune._random import STREAM, random_words32, uniform
+from bittune._random import STREAM, random_bits, random_words32, uniform
 from bittune.errors import InputError
 
 __all__ = [
-    "Compressor", "Identity", "RandK", "TopK", "Dither", "Natural",
+    "Compressor", "Identity", "RandK", "TopK", "Dither", "Natural", "NaturalDither", "PermK",
     "COMPRESSORS", "parse_spec", "make_compressor",
 ]
 
@@ -46,6 +52,10 @@ class Compressor(ABC):
 
     name: ClassVar[str]
     params: ClassVar[tuple[str, ...]] = ()  # names of the integer parameters, in label order
+    #: True when the workers' messages are correlated (then ``ab`` holds the AB constants).
+    correlated: ClassVar[bool] = False
+    #: True when the constructor needs ``n_workers`` (the compressor is built for one n).
+    needs_workers: ClassVar[bool] = False
     unbiased: bool
     omega: float
     alpha: float
@@ -238,8 +248,136 @@ class Natural(Compressor):
         return np.where(np.isfinite(v), out, v), self._fixed_bits(v)
 
 
+class NaturalDither(Compressor):
+    """Natural dithering with s levels and the l2 norm (Horvath, Ho, Horvath, Sahu,
+    Canini, Richtarik, "Natural Compression for Distributed Deep Learning", 2019).
+
+    The levels are {0, 2^(1-s), ..., 1/2, 1}; u_j = |x_j|/||x|| is rounded at random
+    to one of its two neighbouring levels, unbiased (P(up) = (u - low)/(high - low)),
+    and Q(x)_j = ||x|| sign(x_j) level_j. Published (from memory, THEORY.md 1.2):
+    omega = 1/8 + sqrt(d) 2^(1-s) min(1, sqrt(d) 2^(1-s)); expected nnz
+    <= min(d, 2^(s-1)(2^(s-1) + sqrt d)). Bits (THEORY.md 1.2, our model, dense fixed
+    width): 32 (norm) + d (1 sign + ceil(log2(s+1)) level-index bits), every message.
+    """
+
+    name = "natural_dither"
+    params = ("levels",)
+
+    def __init__(self, dim: int, levels: int) -> None:
+        super().__init__(dim)
+        s = self.levels = int(levels)
+        self._smallest = math.ldexp(1.0, 1 - s)  # 2^(1-s); 0.0 only for s > 1075
+        root = math.sqrt(dim)
+        self._set_unbiased(0.125 + root * self._smallest * min(1.0, root * self._smallest))
+        half = 1 << (s - 1)  # 2^(s-1), exact integer (no float overflow for large s)
+        self.density = float(dim) if half * half >= dim else min(float(dim), half * (half + root))
+        self.nominal_bits = float(_FLOAT_BITS + dim * (1 + _ceil_log2(s + 1)))
+
+    def _apply(self, v, keys, round_):
+        a = np.abs(v)
+        # ||x|| = m ||x/m|| with m = max|x_j| (as in Dither: no overflow for huge finite x)
+        m = a.max(axis=-1, keepdims=True)
+        ok = np.isfinite(m) & (m > 0)  # zero rows give zero; non-finite rows pass through
+        scale = np.where(ok, m, 1.0)
+        r = a / scale
+        q = np.sqrt(np.sum(r * r, axis=-1, keepdims=True))
+        q = np.where(ok, q, 1.0)
+        u = np.where(ok, np.minimum(r / q, 1.0), 0.0)  # |x_j|/||x|| in [0, 1]
+        mant, expo = np.frexp(u)  # u = mant 2^expo, mant in [1/2, 1): 2^expo/2 <= u < 2^expo
+        below = u < self._smallest  # between the levels 0 and 2^(1-s)
+        low = np.where(below, 0.0, np.ldexp(0.5, expo))
+        width = np.where(below, self._smallest, low)  # next level up: 2^(1-s), or 2 low
+        level = low + width * (self._draw(keys, round_, v) < (u - low) / width)
+        level = np.where(u > 0, level, 0.0)
+        with np.errstate(over="ignore"):  # only if the true value exceeds float64: inf, as it is
+            out = np.where(ok, np.sign(v) * (scale * (level * q)), v)
+        return out, self._fixed_bits(v)
+
+
+class PermK(Compressor):
+    """PermK, a correlated sparsifier (Szlendak, Tyurin, Richtarik, "Permutation
+    Compressors for Provably Faster Distributed Nonconvex Optimization", ICLR 2022;
+    construction from memory, THEORY.md 1.2).
+
+    One random permutation per (trajectory, round), drawn from the trajectory key
+    and the round only, so all n workers of a trajectory share it (it is the
+    shared seed: no index bits are sent). Padding, when n does not divide d (or d
+    does not divide n), adds phantom entries that are always zero and never sent:
+
+    * d >= n: pad the d coordinates up to d' = q n, q = ceil(d/n), and draw a
+      permutation pi of the d' padded coordinates; worker i keeps pi[q i ..
+      q(i+1)-1], scaled by n, and sends only the real ones (< d) among them, 32 bits
+      each: between 32 (q - (d' - d)) and 32 q bits, 32 d over the n workers
+      together, 32 d/n on average. The owner of every real coordinate is uniform
+      over the workers, so each worker is in U(n - 1) (equality) and the AB identity
+      E||(1/n) sum_i C_i(a_i) - abar||^2 = (1/n) sum_i ||a_i||^2 - ||abar||^2 holds
+      exactly (A = B = 1), padded or not.
+    * d < n: pad the n workers up to n' = q d, q = ceil(n/d), with phantom workers
+      (zero vectors) and draw a permutation pi of the n' padded workers; worker i
+      sends the coordinate floor(pi_i/q) (0-based; THEORY.md's ceil(pi_i/q) with
+      1-based pi_i) scaled by d: always one real coordinate, 32 bits. Its coordinate
+      is uniform, so each worker is in U(d - 1) (equality). Each coordinate's mean
+      over the padded workers is that of q of them drawn without replacement, which
+      gives, with equality, E||(1/n) sum_i C_i(a_i) - abar||^2 =
+      A (1/n) sum_i ||a_i||^2 - B ||abar||^2 with B = (d - 1)/(n' - 1) and
+      A = B n'/n. Without padding (d divides n) A = B = (d - 1)/(n - 1), THEORY.md 1.2.
+    """
+
+    name = "perm_k"
+    correlated = True
+    needs_workers = True
+    unbiased = True  # also at class level: each C_i is unbiased, whatever n is
+
+    def __init__(self, dim: int, *, n_workers: int) -> None:
+        super().__init__(dim)
+        if isinstance(n_workers, (bool, np.bool_)) or not isinstance(n_workers, (int, np.integer)) \
+                or n_workers < 1:
+            raise ValueError(f"n_workers must be an integer >= 1, got {n_workers!r}")
+        self.n_workers = int(n_workers)
+        n, d = self.n_workers, self.dim
+        if d >= n:
+            self.block = -(-d // n)  # q padded coordinates per worker
+            self.padded = self.block * n  # d', padded coordinates
+            self.scale = float(n)
+            self.ab = (1.0, 1.0)
+            self.density = d / n
+        else:
+            self.block = -(-n // d)  # q padded workers per coordinate
+            self.padded = self.block * d  # n', padded workers
+            self.scale = float(d)
+            # integer numerators and denominators: A == B exactly when n' = n
+            self.ab = ((d - 1) * self.padded / (n * (self.padded - 1)), (d - 1) / (self.padded - 1))
+            self.density = 1.0
+        self._set_unbiased(self.scale - 1.0)
+        self.nominal_bits = float(_FLOAT_BITS * self.density)
+
+    def _apply(self, v, keys, round_):
+        n, d = self.n_workers, self.dim
+        if v.shape[1] != n:
+            raise ValueError(f"{self.label()}: built for {n} workers, got a block of {v.shape[1]}")
+        # 64-bit words: ties (probability below padded^2 / 2^65) only make the stable
+        # argsort favour the lower index; the result is always a permutation.
+        words = random_bits(keys, round_, STREAM["compress"], (self.padded,))
+        perm = np.argsort(words, axis=-1, kind="stable")
+        rank = np.empty_like(perm)  # rank[b, j] = position of entry j in the permutation
+        np.put_along_axis(rank, perm, np.arange(self.padded)[None, :], axis=-1)
+        if d >= n:
+            owner = rank[:, :d] // self.block  # (B, d): the worker that keeps coordinate j
+            mask = owner[:, None, :] == np.arange(n)[None, :, None]
+        else:
+            coord = rank[:, :n] // self.block  # (B, n): the coordinate worker i sends
+            mask = coord[:, :, None] == np.arange(d)[None, None, :]
+        with np.errstate(over="ignore"):  # only if the true value exceeds float64
+            out = np.where(mask, v * self.scale, 0.0)
+        bits = _FLOAT_BITS * np.count_nonzero(mask, axis=-1).astype(np.float64)
+        return out, bits
+
+    def __repr__(self) -> str:
+        return f"{type(self).__name__}({self.label()!r}, dim={self.dim}, n_workers={self.n_workers})"
+
+
 COMPRESSORS: dict[str, type[Compressor]] = {
-    cls.name: cls for cls in (Identity, RandK, TopK, Dither, Natural)
+    cls.name: cls for cls in (Identity, RandK, TopK, Dither, Natural, NaturalDither, PermK)
 }
 
 
@@ -314,11 +452,20 @@ def parse_spec(text_or_mapping: str | Mapping[str, Any], *, key: str = "compress
 
 
 def make_compressor(
-    spec: str | Mapping[str, Any], dim: int, *, key: str = "compressor"
+    spec: str | Mapping[str, Any], dim: int, *, key: str = "compressor", n_workers: int | None = None
 ) -> Compressor:
-    """Validate ``spec`` for dimension ``dim`` (k in [1, dim], levels >= 1) and build it."""
+    """Validate ``spec`` for dimension ``dim`` (k in [1, dim], levels >= 1) and build it.
+
+    ``n_workers`` is required by compressors built for one worker count
+    (``needs_workers``: perm_k) and ignored by the others.
+    """
     if isinstance(dim, (bool, np.bool_)) or not isinstance(dim, (int, np.integer)) or dim < 1:
         raise ValueError(f"dim must be an integer >= 1, got {dim!r}")
     params = _parse(spec, key, int(dim))
     name = params.pop("name")
-    return COMPRESSORS[name](int(dim), **params)
+    cls = COMPRESSORS[name]
+    if cls.needs_workers:
+        if n_workers is None:
+            raise InputError(f"{key}: {name} needs the number of workers (n_workers), none was given")
+        params["n_workers"] = n_workers
+    return cls(int(dim), **params)

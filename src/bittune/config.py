@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from bittune._yaml import (
-    REQUIRED, Param, atomic_write_text, check_mapping, dump_yaml, load_yaml, show, unknown_key,
+    REQUIRED, Param, atomic_write_text, check_mapping, dump_yaml, key_text, load_yaml, show, unknown_key,
 )
 from bittune.errors import InputError
 
@@ -34,7 +34,7 @@ __all__ = [
 ]
 
 FORMAT_VERSION = 1
-METHODS = ("gd", "dcgd", "diana", "marina", "ef21")
+METHODS = ("gd", "dcgd", "diana", "marina", "pp_marina", "ef21")
 #: Compressor name -> its parameters.
 COMPRESSORS: dict[str, dict[str, Param]] = {
     "identity": {},
@@ -42,6 +42,8 @@ COMPRESSORS: dict[str, dict[str, Param]] = {
     "top_k": {"k": Param("int", low=1, default=REQUIRED)},
     "dither": {"levels": Param("int", low=1, default=REQUIRED)},
     "natural": {},
+    "natural_dither": {"levels": Param("int", low=1, default=REQUIRED)},
+    "perm_k": {},  # its density is fixed by the dimension and the worker count
 }
 _PROBABILITY = Param("real", low=0, high=1, closed="right")
 #: Top-level single values.
@@ -50,11 +52,13 @@ TOP = {
     "step_size": Param("real", low=0, closed="right", default=REQUIRED),
     "sync_probability": _PROBABILITY,
     "shift_rate": _PROBABILITY,
+    "clients": Param("int", low=1),
 }
 #: Method-specific keys: key -> {method: required?}. Any other method rejects the key.
 METHOD_KEYS = {
-    "sync_probability": {"marina": True},
+    "sync_probability": {"marina": True, "pp_marina": True},
     "shift_rate": {"diana": False},  # None: the method's default
+    "clients": {"pp_marina": False},  # None: all n workers (r = n); needs TOP["clients"] to be read
 }
 PROBLEM = {"dimension": Param("int", low=1), "workers": Param("int", low=1)}
 #: Free-form sections written by later stages (listed so typos of them are caught).
@@ -72,6 +76,7 @@ class Config:
     dimension: int | None
     workers: int | None
     extra: dict = field(default_factory=dict)  # other top-level sections, kept verbatim
+    clients: int | None = None  # pp_marina: clients per compressed round (None: all)
 
 
 def parse_config(mapping: Any, *, source: str) -> Config:
@@ -105,7 +110,7 @@ def parse_config(mapping: Any, *, source: str) -> Config:
         if key in _KNOWN:
             continue
         if not isinstance(key, str):
-            problems.append(unknown_key(str(key), key, _KNOWN))
+            problems.append(unknown_key(key_text(key), key, _KNOWN))
         elif key not in FREE_SECTIONS and difflib.get_close_matches(key, _KNOWN + list(FREE_SECTIONS)):
             problems.append(unknown_key(key, key, _KNOWN + list(FREE_SECTIONS)))
         else:
@@ -114,6 +119,7 @@ def parse_config(mapping: Any, *, source: str) -> Config:
         raise InputError(problems, source=source)
     return Config(method=method, compressor=compressor, step_size=top["step_size"],
                   sync_probability=top["sync_probability"], shift_rate=top["shift_rate"],
+                  clients=top["clients"],
                   dimension=sizes["dimension"], workers=sizes["workers"], extra=extra)
 
 
@@ -139,7 +145,7 @@ def _check_compressor(raw: Any, problems: list[str]) -> dict:
         if key in all_params:
             problems.append(f"compressor.{key}: not used by compressor {name}")
         else:
-            problems.append(unknown_key(f"compressor.{key}", key, ["name", *schema]))
+            problems.append(unknown_key(f"compressor.{key_text(key)}", key, ["name", *schema]))
     return {"name": name, **check_mapping(raw, schema, prefix="compressor.", problems=problems,
                                           allow_unknown=True)}
 
@@ -153,7 +159,7 @@ def config_to_dict(cfg: Config) -> dict:
     """Plain mapping in the documented key order; unset optional keys left out."""
     out: dict[str, Any] = {"bittune_config": FORMAT_VERSION, "method": cfg.method,
                            "compressor": dict(cfg.compressor), "step_size": cfg.step_size}
-    for key in ("sync_probability", "shift_rate"):
+    for key in ("sync_probability", "shift_rate", "clients"):
         if getattr(cfg, key) is not None:
             out[key] = getattr(cfg, key)
     sizes = {k: getattr(cfg, k) for k in ("dimension", "workers") if getattr(cfg, k) is not None}
@@ -185,6 +191,8 @@ def check_config_fits(cfg: Config, *, dimension: int, workers: int, source: str)
     k = cfg.compressor.get("k")
     if k is not None and k > dimension:
         problems.append(f"compressor.k: must be <= the dimension {dimension}, got {k}")
+    if cfg.clients is not None and cfg.clients > workers:
+        problems.append(f"clients: must be <= the number of workers {workers}, got {cfg.clients}")
     if problems:
         raise InputError(problems, source=source)
     if cfg.workers is not None and cfg.workers != workers:

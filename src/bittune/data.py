@@ -7,12 +7,17 @@ problems of one file are raised together in one :class:`~bittune.errors.InputErr
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import io
+import lzma
 import math
 import operator
 import re
+import tokenize
+import warnings
 import zipfile
+import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -108,7 +113,11 @@ def load_data(
                                    or n_features < 1):
         raise InputError(f"data.n_features: must be an integer >= 1, got {n_features!r}")
     p = Path(src)
-    if not p.is_file():
+    try:
+        found = p.is_file()
+    except (OSError, ValueError):  # a name too long for the file system, a NUL character
+        found = False
+    if not found:
         raise InputError(f"{src}: no such file")
     try:
         raw = p.read_bytes()
@@ -144,12 +153,12 @@ def _svm_line_problem(body: bytes) -> str:
             return f"expected index:value, got {_show(t)}"
         if not re.fullmatch(rb"[+-]?\d+", idx):
             return f"bad feature index {_show(idx)}"
+        if len(idx.lstrip(b"+-")) > 18:  # before int(): Python refuses over 4300 digits
+            return f"feature index {_show(idx)} is too large"
         if int(idx) < 1:
             return f"feature index must be >= 1 (indices are 1-based), got {int(idx)}"
         if idx.startswith(b"+"):
             return f"bad feature index {_show(idx)} (write indices without a sign)"
-        if len(idx) > 18:
-            return f"feature index {_show(idx)} is too large"
         if not _NUM_B.fullmatch(val):
             return f"bad value {_show(val)} for feature {int(idx)}"
     return "cannot parse the line"
@@ -267,16 +276,45 @@ def _read_csv(raw: bytes, src: str, label_column: str | None, group_column: str 
     return Dataset(X=X, y=np.array(labels, dtype=np.float64), groups=g, source=src)
 
 
+#: What reading a damaged archive can raise: zipfile (RuntimeError for an
+#: encrypted member, its subclass NotImplementedError for an unknown compression
+#: method), its decompressors (zlib, lzma; bz2 raises OSError), numpy's array
+#: header parser (ValueError, or tokenize's error on an old-style header), and
+#: the allocation of a shape the header declares but the file cannot hold.
+_NPZ_ERRORS = (OSError, ValueError, EOFError, zipfile.BadZipFile, zlib.error, lzma.LZMAError,
+               RuntimeError, MemoryError, tokenize.TokenError)
+
+
+@contextlib.contextmanager
+def _quiet_array_header():
+    """numpy reads a .npy header with ``ast.literal_eval``: a damaged header can make
+    Python warn about its escape sequences (DeprecationWarning; SyntaxWarning from
+    3.12) before numpy rejects it. The file is reported as unreadable anyway."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)
+        warnings.simplefilter("ignore", SyntaxWarning)
+        yield
+
+
 def _read_npz(p: Path, src: str) -> Dataset:
     """``.npz`` with arrays ``X`` (2-D), ``y`` (1-D) and optional ``groups`` (1-D)."""
     try:
-        z = np.load(p, allow_pickle=False)
-        if not isinstance(z, np.lib.npyio.NpzFile):
-            raise InputError(f"{src}: expected an .npz archive with arrays X and y, got a single array")
-        with z:
-            arrays = {k: z[k] for k in ("X", "y", "groups") if k in z.files}
-            found = ", ".join(z.files) or "none"
-    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as e:
+        # Our own handle: np.load leaves the file open when zipfile rejects it.
+        with _quiet_array_header(), open(p, "rb") as fh:
+            head = fh.read(6)
+            fh.seek(0)
+            # numpy.savez writes a zip archive (local header PK\3\4, or PK\5\6 when empty);
+            # anything else would reach numpy's pickle branch and a misleading message.
+            if not head.startswith((b"PK\x03\x04", b"PK\x05\x06", b"\x93NUMPY")):
+                raise InputError(f"{src}: not a readable .npz archive (numpy.savez writes a zip file; "
+                                 f"this one starts with {head!r})")
+            z = np.load(fh, allow_pickle=False)
+            if not isinstance(z, np.lib.npyio.NpzFile):
+                raise InputError(f"{src}: expected an .npz archive with arrays X and y, got a single array")
+            with z:
+                arrays = {k: z[k] for k in ("X", "y", "groups") if k in z.files}
+                found = ", ".join(z.files) or "none"
+    except _NPZ_ERRORS as e:
         raise InputError(f"{src}: not a readable .npz archive ({e})") from None
     _raise([f"{src}: array {k!r} missing (found: {found})" for k in ("X", "y") if k not in arrays])
     X, y, g = arrays["X"], arrays["y"], arrays.get("groups")

@@ -18,7 +18,9 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
-from bittune._yaml import REQUIRED, Param, check_mapping, parse_yaml, read_bytes, show, unknown_key
+from bittune._yaml import (
+    REQUIRED, Param, check_mapping, key_text, parse_yaml, read_bytes, show, unknown_key,
+)
 from bittune.errors import InputError
 
 __all__ = [
@@ -26,16 +28,17 @@ __all__ = [
     "load_job", "parse_job", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
 ]
 
-MODELS = ("logistic_nonconvex", "least_squares")
-METHOD_NAMES = ("gd", "dcgd", "diana", "marina", "ef21")
-COMPRESSOR_NAMES = ("identity", "rand_k", "top_k", "dither", "natural")
+MODELS = ("logistic_nonconvex", "least_squares", "softmax", "mlp", "plugin")
+METHOD_NAMES = ("gd", "dcgd", "diana", "marina", "pp_marina", "ef21")
+COMPRESSOR_NAMES = ("identity", "rand_k", "top_k", "dither", "natural", "natural_dither", "perm_k")
 SPLITS = ("iid", "by_label", "dirichlet", "column")
 DATA_FORMATS = ("svmlight", "csv", "npz")
 #: File extension -> data format, used when ``data.format`` is not given.
 _EXTENSIONS = {".svm": "svmlight", ".svmlight": "svmlight", ".libsvm": "svmlight",
                ".txt": "svmlight", ".csv": "csv", ".npz": "npz"}
 #: Default ``regularization`` per model.
-_DEFAULT_REGULARIZATION = {"logistic_nonconvex": 0.1, "least_squares": 0.0}
+_DEFAULT_REGULARIZATION = {"logistic_nonconvex": 0.1, "least_squares": 0.0, "softmax": 1e-3, "mlp": 1e-4,
+                           "plugin": 0.0}  # softmax/mlp/plugin: our choice, no source
 
 
 @dataclass(frozen=True)
@@ -129,8 +132,10 @@ class Job:
     search: SearchSpec
     objective: str
     network: NetworkSpec
+    model_options: dict
     raw: dict = field(repr=False)
     digest: str  # sha256 hex of the job file bytes
+    allow_code: bool = False  # --allow-code: a plugin model may be imported
 
 
 #: Top-level keys that hold a single value ("" section).
@@ -139,6 +144,8 @@ TOP = {
     # the default depends on the model, filled in by parse_job
     "regularization": Param("real", low=0.0),
     "objective": Param("choice", options=("bits", "seconds"), default="bits"),
+    # model plugin: "module:function" or "path/file.py:function" (runs only with --allow-code)
+    "plugin": Param("str"),
 }
 
 #: Section name -> key -> constraint. Declare a new section here.
@@ -162,6 +169,11 @@ SECTIONS: dict[str, dict[str, Param]] = {
     "budget": {
         "max_rounds": Param("int", low=1, default=REQUIRED),
         "max_bits_per_worker": Param("real", low=0, closed="right"),
+    },
+    "mlp": {  # the model mlp
+        "hidden": Param("int", low=1, default=16),
+        "activation": Param("choice", options=("tanh", "relu"), default="tanh"),
+        "loss": Param("choice", options=("logistic", "squared"), default="logistic"),
     },
     "network": {  # the objective "seconds"; defaults: a metered edge link (our choice, no source)
         "latency": Param("real", low=0, default=0.05),
@@ -214,6 +226,7 @@ _USED_ONLY_IF = {
     "workers.dirichlet_alpha": (lambda v: v["workers"].get("split") == "dirichlet",
                                 "workers.split is dirichlet"),
     "start.scale": (lambda v: v["start"].get("seed") is not None, "start.seed is set"),
+    **{f"mlp.{k}": (lambda v: v[""].get("model") == "mlp", "model is mlp") for k in ("hidden", "activation", "loss")},
     **{f"network.{k}": (lambda v: v[""].get("objective") == "seconds", "objective is seconds")
        for k in ("latency", "uplink_bandwidth", "downlink_bandwidth", "compute_seconds")},
 }
@@ -241,7 +254,7 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
                          source=source)
     problems: list[str] = []
     known = list(TOP) + list(SECTIONS)
-    problems += [unknown_key(str(k), k, known) for k in mapping if k not in known]
+    problems += [unknown_key(key_text(k), k, known) for k in mapping if k not in known]
     values = {"": check_mapping({k: mapping.get(k) for k in TOP}, TOP, prefix="", problems=problems)}
     for name, schema in SECTIONS.items():
         raw = mapping.get(name)
@@ -256,11 +269,14 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
             values[name] = {}
             continue
         values[name] = check_mapping(raw or {}, schema, prefix=f"{name}.", problems=problems)
-    given = {f"{s}.{k}" for s in SECTIONS if isinstance(mapping.get(s), dict)
+    given = {f"{s}.{key_text(k)}" for s in SECTIONS if isinstance(mapping.get(s), dict)
              for k, v in mapping[s].items() if v is not None}
     data, start = _check_data(values, base_dir, problems), _check_start(values, base_dir, problems)
     if problems:
         raise InputError(problems, source=source)
+    if values[""].get("model") == "plugin" and not values[""].get("plugin"):
+        raise InputError(["plugin: required for model plugin ('module:function' or 'path/file.py:function')"],
+                         source=source)
     for key, (used, condition) in _USED_ONLY_IF.items():
         if key in given and not used(values):
             warnings.warn(f"{source}: {key}: ignored unless {condition}", UserWarning, stacklevel=2)
@@ -275,9 +291,23 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
         workers=WorkersSpec(**values["workers"]), target=TargetSpec(**values["target"]),
         budget=BudgetSpec(**values["budget"]), start=start, probe=ProbeSpec(**values["probe"]),
         search=SearchSpec(**values["search"]), objective=top["objective"],
+        model_options=_model_options(top, values, base_dir),
         network=NetworkSpec(**values["network"]),
         raw=deepcopy(mapping), digest=digest,
     )
+
+
+def _model_options(top: dict, values: dict, base_dir: Path) -> dict:
+    """Options handed to the model: the mlp section, or the plugin spec (path made absolute)."""
+    if top["model"] == "mlp":
+        return dict(values["mlp"])
+    if top["model"] == "plugin":
+        spec = top["plugin"]
+        module, _, func = spec.rpartition(":")
+        if module.endswith(".py"):
+            spec = f"{_resolve(base_dir, module)}:{func}"
+        return {"plugin": spec}
+    return {}
 
 
 def _resolve(base_dir: Path, text: str) -> Path:
@@ -286,11 +316,21 @@ def _resolve(base_dir: Path, text: str) -> Path:
 
 
 def _existing_file(key: str, base_dir: Path, text: str, problems: list[str]) -> Path:
-    p = _resolve(base_dir, text)
-    if not p.exists():
-        problems.append(f"{key}: file not found: {p}")
-    elif not p.is_file():
-        problems.append(f"{key}: not a file: {p}")
+    if "\0" in text:
+        problems.append(f"{key}: a path cannot hold a NUL character, got {show(text)}")
+        return Path(base_dir) / text.replace("\0", "")
+    try:
+        p = _resolve(base_dir, text)
+    except RuntimeError as exc:  # expanduser: ``~nobody-here`` or no home folder
+        problems.append(f"{key}: cannot expand {show(text)}: {exc}")
+        return Path(base_dir) / text
+    try:
+        if not p.exists():
+            problems.append(f"{key}: file not found: {p}")
+        elif not p.is_file():
+            problems.append(f"{key}: not a file: {p}")
+    except OSError as exc:  # e.g. a name longer than the file system allows
+        problems.append(f"{key}: cannot use the path {show(str(p))}: {exc.strerror}")
     return p
 
 

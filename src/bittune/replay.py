@@ -16,10 +16,12 @@ def replay(ws: Workspace, cfg: Config, *, seeds) -> list[Trajectory]:
     """Simulate ``cfg`` on the workspace's problem, one trajectory per seed, in one batch."""
     p = ws.problem
     check_config_fits(cfg, dimension=p.dim, workers=p.n_workers, source="config")
-    comp = make_compressor(cfg.compressor, p.dim, key="compressor")
+    comp = make_compressor(cfg.compressor, p.dim, key="compressor", n_workers=p.n_workers)
     params = {}
-    if cfg.method == "marina" and cfg.sync_probability is not None:
+    if cfg.method in ("marina", "pp_marina") and cfg.sync_probability is not None:
         params["sync_probability"] = cfg.sync_probability
+    if cfg.method == "pp_marina" and cfg.clients is not None:
+        params["clients"] = cfg.clients
     if cfg.method == "diana" and cfg.shift_rate is not None:
         params["shift_rate"] = cfg.shift_rate
     return simulate(p, method=cfg.method, compressor=comp, step_size=cfg.step_size, seeds=seeds,

@@ -99,7 +99,8 @@ def decide(new: Evaluation, old: Evaluation, *, margin: float = MARGIN, level: f
 
 
 def _candidate(cfg: Config) -> Candidate:
-    return Candidate(cfg.method, dict(cfg.compressor), float(cfg.step_size), cfg.sync_probability, cfg.shift_rate)
+    return Candidate(cfg.method, dict(cfg.compressor), float(cfg.step_size), cfg.sync_probability, cfg.shift_rate,
+                     clients=cfg.clients if cfg.method == "pp_marina" else None)
 
 
 def _warm_params(space, cands: list[Candidate]) -> list[dict]:
@@ -109,16 +110,21 @@ def _warm_params(space, cands: list[Candidate]) -> list[dict]:
     for c in cands:
         if c.method not in space.methods or c.compressor["name"] not in space.compressors[c.method]:
             continue
-        t = space.theory(c.method, c.compressor)
+        clients = None
+        if c.method == "pp_marina":
+            clients = int(min(max(c.clients or space.constants.n_workers, 1), space.constants.n_workers))
+        t = space.theory(c.method, c.compressor, clients)
         params = {"method": c.method, f"{c.method}.compressor": c.compressor["name"],
                   f"{c.method}.step_mult": _clip(c.step_size / t.step_size, s.step_range)}
         dp = space._density_param(c.compressor["name"])
         if dp is not None:
             pname, lo, hi = dp
             params[pname] = int(min(max(c.compressor[pname.split(".")[1]], lo), hi))
-        if c.method == "marina":
-            params["marina.sync_mult"] = _clip((c.sync_probability or t.sync_probability) / t.sync_probability,
-                                               s.sync_range)
+        if c.method in ("marina", "pp_marina"):
+            params[f"{c.method}.sync_mult"] = _clip(
+                (c.sync_probability or t.sync_probability) / t.sync_probability, s.sync_range)
+        if clients is not None:
+            params["pp_marina.clients"] = clients
         if c.method == "diana":
             params["diana.shift_mult"] = _clip((c.shift_rate or t.shift_rate) / t.shift_rate, s.shift_range)
         key = tuple(sorted(params.items()))
@@ -157,13 +163,13 @@ def _previous_best(cfg: Config, count: int = 3) -> list[Candidate]:
 
 def _narrowed(spec, cand: Candidate, space) -> dict:
     """Search overrides around the previous winner (small drift)."""
-    t = space.theory(cand.method, cand.compressor)
+    t = space.theory(cand.method, cand.compressor, cand.clients)
     m = cand.step_size / t.step_size
     lo, hi = spec.step_range
     out = {"methods": [cand.method],
            "compressors": [cand.compressor["name"]] if cand.method != "gd" else list(spec.compressors),
            "step_range": (max(lo, min(m / 4, hi)), min(hi, max(m * 4, lo)))}
-    if cand.method == "marina" and cand.sync_probability:
+    if cand.method in ("marina", "pp_marina") and cand.sync_probability:
         s = cand.sync_probability / t.sync_probability
         out["sync_range"] = (max(spec.sync_range[0], min(s / 3, spec.sync_range[1])),
                              min(spec.sync_range[1], max(s * 3, spec.sync_range[0])))
@@ -173,7 +179,7 @@ def _narrowed(spec, cand: Candidate, space) -> dict:
 def retune(job_path, *, previous, output, trials: int | None = None, jobs: int | None = None,
            seed: int | None = None, run_dir=None, storage: str | None = None, history=None,
            margin: float = MARGIN, level: float = LEVEL, drift_threshold: float = DRIFT_THRESHOLD,
-           report_dir=None, progress=None) -> RetuneResult:
+           report_dir=None, allow_code: bool = False, progress=None) -> RetuneResult:
     """Retune on tonight's data against the config in use; see the module docstring."""
     previous, output = Path(previous), Path(output)
     prev = load_config(previous)
@@ -182,7 +188,7 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
     storage_url = storage or str(run_dir / "study.journal")
     log = progress or _Progress(total=trials or 0)
-    first = prepare(job_path, {"jobs": jobs, "seed": seed}, log)
+    first = prepare(job_path, {"jobs": jobs, "seed": seed}, log, allow_code=allow_code)
     ws, spec = first.ws, first.job.search
     dims = (prev.dimension or -1, ws.problem.dim)
     workers = (prev.workers or -1, ws.problem.n_workers)

@@ -33,7 +33,7 @@ from .compressors import COMPRESSORS, make_compressor
 from .constants import Constants
 from .cost import cost_function
 from .simulate import Trajectory, simulate
-from .theory import measured_contraction, theory_point
+from .theory import fits, measured_contraction, theory_point
 
 __all__ = [
     "Candidate", "Space", "Objective", "score", "open_storage", "open_study", "enqueue_seeds",
@@ -62,10 +62,13 @@ class Candidate:
     step_mult: float = 1.0
     sync_mult: float | None = None
     shift_mult: float | None = None
+    clients: int | None = None  # PP-MARINA's clients per compressed round
 
     def params(self) -> dict:
         """Method parameters as :func:`bittune.simulate.simulate` takes them."""
         out = {}
+        if self.clients is not None:
+            out["clients"] = self.clients
         if self.sync_probability is not None:
             out["sync_probability"] = self.sync_probability
         if self.shift_rate is not None:
@@ -80,11 +83,12 @@ class Candidate:
     def key(self) -> tuple:
         """Identity for de-duplication: same method, compressor, and values to 4 digits."""
         r = lambda v: None if v is None else float(f"{v:.4g}")  # noqa: E731
-        return (self.method, self.label, r(self.step_size), r(self.sync_probability), r(self.shift_rate))
+        return (self.method, self.label, r(self.step_size), r(self.sync_probability), r(self.shift_rate),
+                self.clients)
 
     def with_step(self, step: float) -> "Candidate":
         return Candidate(self.method, self.compressor, step, self.sync_probability, self.shift_rate,
-                         self.step_mult * step / self.step_size, self.sync_mult, self.shift_mult)
+                         self.step_mult * step / self.step_size, self.sync_mult, self.shift_mult, self.clients)
 
     def to_config(self) -> dict:
         out = {"method": self.method, "compressor": dict(self.compressor), "step_size": float(self.step_size)}
@@ -92,6 +96,8 @@ class Candidate:
             out["sync_probability"] = float(self.sync_probability)
         if self.shift_rate is not None:
             out["shift_rate"] = float(self.shift_rate)
+        if self.clients is not None:
+            out["clients"] = int(self.clients)
         return out
 
 
@@ -112,50 +118,55 @@ class Space:
             from .errors import InputError
 
             raise InputError(f"search.compressors: no compressor in {spec.compressors} fits "
-                             f"{', '.join(empty)} (dcgd, diana, marina need an unbiased one: rand_k, "
-                             f"dither, natural, identity)")
+                             f"{', '.join(empty)} (dcgd, diana, pp_marina need an independent unbiased one: "
+                             f"rand_k, dither, natural, natural_dither, identity; marina also takes perm_k)")
 
     # ------------------------------------------------------------ structure
     def _fitting(self, method: str) -> list[str]:
+        """Compressor names of the job that ``method``'s theory applies to (theory.fits)."""
         if method == "gd":
             return ["identity"]
-        names = [c for c in self.spec.compressors if method == "ef21" or COMPRESSORS[c](
-            self.dim, *([1] if COMPRESSORS[c].params else [])).unbiased]
-        return names
+        out = []
+        for name in self.spec.compressors:
+            spec = {"name": name, **{p: 1 for p in COMPRESSORS[name].params}}
+            if fits(method, make_compressor(spec, self.dim, n_workers=self.constants.n_workers)):
+                out.append(name)
+        return out
 
     def _density_param(self, name: str) -> tuple[str, int, int] | None:
         """(param name, low, high) of a compressor's density, None if it has none."""
         if name in ("rand_k", "top_k"):
             return f"{name}.k", 1, self.dim
-        if name == "dither":
+        if name in ("dither", "natural_dither"):
             lo, hi = self.spec.levels_range
-            return "dither.levels", int(lo), int(hi)
+            return f"{name}.levels", int(lo), int(min(hi, 8) if name == "natural_dither" else hi)
         return None
 
-    def theory(self, method: str, compressor: dict):
-        """The theory point of ``method`` with ``compressor`` (cached)."""
-        key = (method, tuple(sorted(compressor.items())))
+    def theory(self, method: str, compressor: dict, clients: int | None = None):
+        """The theory point of ``method`` with ``compressor`` (and PP-MARINA's clients), cached."""
+        key = (method, tuple(sorted(compressor.items())), clients)
         if key not in self._theory:
-            comp = make_compressor(compressor, self.dim)
+            comp = make_compressor(compressor, self.dim, n_workers=self.constants.n_workers)
             alpha = None
-            if method == "ef21" and not comp.unbiased and self._vectors is not None:
+            if method == "ef21" and not comp.unbiased and not comp.correlated and self._vectors is not None:
                 alpha = measured_contraction(comp, self._vectors)
             self._theory[key] = theory_point(method, comp, self.constants, target=self.target,
-                                             contraction=alpha)
+                                             contraction=alpha, clients=clients)
         return self._theory[key]
 
     def candidate(self, method: str, compressor: dict, *, step_mult: float = 1.0,
-                  sync_mult: float | None = None, shift_mult: float | None = None) -> Candidate:
-        t = self.theory(method, compressor)
+                  sync_mult: float | None = None, shift_mult: float | None = None,
+                  clients: int | None = None) -> Candidate:
+        t = self.theory(method, compressor, clients)
         sync = shift = None
-        if method == "marina":
+        if method in ("marina", "pp_marina"):
             sync_mult = 1.0 if sync_mult is None else sync_mult
             sync = min(1.0, sync_mult * t.sync_probability)
         if method == "diana":
             shift_mult = 1.0 if shift_mult is None else shift_mult
             shift = min(1.0, shift_mult * t.shift_rate)
         return Candidate(method, dict(compressor), step_mult * t.step_size, sync, shift,
-                         step_mult, sync_mult, shift_mult)
+                         step_mult, sync_mult, shift_mult, clients if method == "pp_marina" else None)
 
     # --------------------------------------------------------------- trials
     def suggest(self, trial: optuna.Trial) -> Candidate:
@@ -169,13 +180,15 @@ class Space:
             pname, lo, hi = dp
             compressor[pname.split(".")[1]] = trial.suggest_int(pname, lo, hi, log=True)
         step_mult = trial.suggest_float(f"{method}.step_mult", *s.step_range, log=True)
-        sync_mult = shift_mult = None
-        if method == "marina":
-            sync_mult = trial.suggest_float("marina.sync_mult", *s.sync_range, log=True)
+        sync_mult = shift_mult = clients = None
+        if method in ("marina", "pp_marina"):
+            sync_mult = trial.suggest_float(f"{method}.sync_mult", *s.sync_range, log=True)
+        if method == "pp_marina":
+            clients = trial.suggest_int("pp_marina.clients", 1, self.constants.n_workers, log=True)
         if method == "diana":
             shift_mult = trial.suggest_float("diana.shift_mult", *s.shift_range, log=True)
         return self.candidate(method, compressor, step_mult=step_mult, sync_mult=sync_mult,
-                              shift_mult=shift_mult)
+                              shift_mult=shift_mult, clients=clients)
 
     def density_options(self, name: str, points: int) -> list[dict]:
         """Settings of compressor ``name`` on a log grid of ``points`` densities (one if it has none)."""
@@ -211,8 +224,10 @@ class Space:
             if dp is not None:
                 pname, lo, hi = dp
                 base[pname] = int(min(max(comp[pname.split(".")[1]], lo), hi))
-            if method == "marina":
-                base["marina.sync_mult"] = _clip(1.0, s.sync_range)
+            if method in ("marina", "pp_marina"):
+                base[f"{method}.sync_mult"] = _clip(1.0, s.sync_range)
+            if method == "pp_marina":
+                base["pp_marina.clients"] = int(self.constants.n_workers)
             if method == "diana":
                 base["diana.shift_mult"] = _clip(1.0, s.shift_range)
             for m in SEED_LADDER:
@@ -232,8 +247,9 @@ class Space:
         if dp is not None:
             compressor[dp[0].split(".")[1]] = int(params[dp[0]])
         return self.candidate(method, compressor, step_mult=params[f"{method}.step_mult"],
-                              sync_mult=params.get("marina.sync_mult") if method == "marina" else None,
-                              shift_mult=params.get("diana.shift_mult") if method == "diana" else None)
+                              sync_mult=params.get(f"{method}.sync_mult"),
+                              shift_mult=params.get("diana.shift_mult") if method == "diana" else None,
+                              clients=params.get("pp_marina.clients") if method == "pp_marina" else None)
 
 
 def _clip(value: float, bounds: tuple) -> float:
@@ -243,7 +259,7 @@ def _clip(value: float, bounds: tuple) -> float:
 # -------------------------------------------------------------------- objective
 def stall_window(method: str, sync_probability=None):
     """Rounds without progress before a trajectory counts as stalled: 100, MARINA max(100, 10/p)."""
-    if method == "marina" and sync_probability is not None:
+    if method in ("marina", "pp_marina") and sync_probability is not None:
         return np.maximum(STALL_ROUNDS, 10.0 / np.asarray(sync_probability, dtype=np.float64))
     return STALL_ROUNDS
 
@@ -298,7 +314,7 @@ class Objective:
         trial.set_user_attr("pid", os.getpid())
         trial.set_user_attr("candidate", _plain(cand.to_config()))
         cap = self._cap(trial.study)
-        comp = make_compressor(cand.compressor, self.problem.dim)
+        comp = make_compressor(cand.compressor, self.problem.dim, n_workers=self.problem.n_workers)
         window = stall_window(cand.method, cand.sync_probability)
         d = self.problem.dim
         if self.network is None:

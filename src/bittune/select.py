@@ -69,6 +69,7 @@ class Evaluation:
             "step_size": float(self.candidate.step_size),
             "sync_probability": self.candidate.sync_probability,
             "shift_rate": self.candidate.shift_rate,
+            "clients": self.candidate.clients,
             "reached": int(sum(r.reached for r in self.runs)),
             "seeds": len(self.runs),
             "status": [r.status for r in self.runs],
@@ -118,11 +119,12 @@ def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None) ->
         S = len(seeds)
         steps = np.repeat([candidates[i].step_size for i in idx], S)
         params = {}
-        for key in ("sync_probability", "shift_rate"):
+        for key in ("sync_probability", "shift_rate", "clients"):
             vals = [getattr(candidates[i], key) for i in idx]
             if vals[0] is not None:
                 params[key] = np.repeat(vals, S)
-        runs = simulate(ws.problem, method=first.method, compressor=make_compressor(first.compressor, ws.problem.dim),
+        comp = make_compressor(first.compressor, ws.problem.dim, n_workers=ws.problem.n_workers)
+        runs = simulate(ws.problem, method=first.method, compressor=comp,
                         step_size=steps, seeds=np.tile(seeds, len(idx)), target=ws.target,
                         max_rounds=job.budget.max_rounds, x0=ws.x0, params=params,
                         max_bits_per_worker=job.budget.max_bits_per_worker,

@@ -26,6 +26,7 @@ from .methods import dense_bits
 __all__ = [
     "TheoryPoint", "RULES", "theory_point", "theory_table", "measured_contraction",
     "default_compressor_specs", "gd_rule", "dcgd_rule", "diana_rule", "marina_rule", "ef21_rule",
+    "pp_marina_rule", "ab_step_size", "fits",
 ]
 
 
@@ -42,10 +43,12 @@ class TheoryPoint:
     predicted_bits_per_worker: float
     source: str  # short citation of the rule
     note: str = ""
+    clients: int | None = None  # PP-MARINA: clients r sampled per compressed round
 
     def method_params(self) -> dict[str, float]:
         """The method parameters in the form :func:`bittune.simulate.simulate` takes."""
-        out = {"sync_probability": self.sync_probability, "shift_rate": self.shift_rate}
+        out = {"sync_probability": self.sync_probability, "shift_rate": self.shift_rate,
+               "clients": self.clients}
         return {k: v for k, v in out.items() if v is not None}
 
     def to_dict(self) -> dict:
@@ -56,6 +59,7 @@ class TheoryPoint:
             "step_size": float(self.step_size),
             "sync_probability": None if self.sync_probability is None else float(self.sync_probability),
             "shift_rate": None if self.shift_rate is None else float(self.shift_rate),
+            "clients": None if self.clients is None else int(self.clients),
             "predicted_rounds": int(self.predicted_rounds),
             "predicted_bits_per_worker": float(self.predicted_bits_per_worker),
             "source": self.source,
@@ -70,9 +74,9 @@ def _rounds(numerator: float, target: float) -> int:
     return max(1, math.ceil(value))
 
 
-def _point(method, comp, gamma, rounds, bits, source, *, sync=None, shift=None, note=""):
+def _point(method, comp, gamma, rounds, bits, source, *, sync=None, shift=None, note="", clients=None):
     return TheoryPoint(method, comp.label(), float(gamma), sync, shift, int(rounds), float(bits),
-                       source, note)
+                       source, note, clients)
 
 
 def gd_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
@@ -135,22 +139,71 @@ def diana_rule(compressor: Compressor, constants: Constants, *, target: float) -
                   "derived (THEORY 2.3) for DIANA, Mishchenko et al. 2019", shift=1.0 / (1.0 + omega))
 
 
+def ab_step_size(*, L_minus: float, L_plus: float, L_pm: float, p: float, A: float, B: float) -> float:
+    """MARINA's step under the AB inequality (THEORY.md 1.1 and 2.8).
+
+    Szlendak, Tyurin, Richtarik, "Permutation Compressors for Provably Faster
+    Distributed Nonconvex Optimization", ICLR 2022, main theorem (number from
+    memory): gamma = 1/(L_- + sqrt(((1-p)/p)((A - B) L_+^2 + B L_pm^2))), which gives
+    E||grad f(x_hat)||^2 <= 2 Delta0/(gamma K). Independent Q_i in U(omega) have
+    A = omega/n, B = 0 and recover the refined MARINA step.
+    """
+    if not (0.0 < p <= 1.0):
+        raise ValueError(f"p must be in (0, 1], got {p!r}")
+    if not (A >= B >= 0.0):
+        raise ValueError(f"the AB constants must satisfy A >= B >= 0, got A = {A!r}, B = {B!r}")
+    return 1.0 / (L_minus + math.sqrt((1.0 - p) / p * ((A - B) * L_plus**2 + B * L_pm**2)))
+
+
 def marina_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
-    """MARINA, refined form (THEORY.md 2.4).
+    """MARINA, refined form (THEORY.md 2.4), AB form for correlated compressors (2.8).
 
     Gorbunov, Burlachenko, Li, Richtarik, "MARINA: Faster Non-Convex Distributed
     Learning with Compression", ICML 2021, Theorem 2.1 and Corollary 2.1 (from
     memory), in the refined form of Szlendak, Tyurin, Richtarik, ICLR 2022 (from
     memory): p = zeta/d, gamma = 1/(L_- + L_+ sqrt((1-p) omega/(p n))),
     E||grad f(x_hat)||^2 <= 2 Delta0/(gamma K). Bits: 32 d + K (p 32 d + (1-p) bits(Q)).
+    A correlated compressor (PermK) uses :func:`ab_step_size` with its own (A, B)
+    and the Hessian variance L_pm; p = zeta/d is 1/n for PermK when d >= n.
     """
     c, omega = constants, compressor.omega
     p = min(1.0, compressor.density / compressor.dim)  # density >= 1, so p > 0
-    gamma = 1.0 / (c.L + c.L_plus * math.sqrt((1.0 - p) * omega / (p * c.n_workers)))
+    if compressor.correlated:
+        if not (math.isfinite(c.L_pm) and c.L_pm >= 0):
+            raise ValueError(f"constants.L_pm must be a finite number >= 0, got {c.L_pm!r}")
+        A, B = compressor.ab
+        gamma = ab_step_size(L_minus=c.L, L_plus=c.L_plus, L_pm=c.L_pm, p=p, A=A, B=B)
+        source = "Szlendak et al. 2022, AB theorem for MARINA (from memory)"
+    else:
+        gamma = 1.0 / (c.L + c.L_plus * math.sqrt((1.0 - p) * omega / (p * c.n_workers)))
+        source = "Gorbunov et al. 2021, Thm 2.1 refined (from memory)"
     rounds = _rounds(2.0 * c.delta0 / gamma, target)
     per_round = p * dense_bits(c.dim) + (1.0 - p) * compressor.nominal_bits
-    return _point("marina", compressor, gamma, rounds, dense_bits(c.dim) + rounds * per_round,
-                  "Gorbunov et al. 2021, Thm 2.1 refined (from memory)", sync=p)
+    return _point("marina", compressor, gamma, rounds, dense_bits(c.dim) + rounds * per_round, source, sync=p)
+
+
+def pp_marina_rule(compressor: Compressor, constants: Constants, *, target: float,
+                   clients: int | None = None) -> TheoryPoint:
+    """PP-MARINA, r clients sampled with replacement per compressed round (THEORY.md 2.6).
+
+    Gorbunov, Burlachenko, Li, Richtarik, "MARINA: Faster Non-Convex Distributed
+    Learning with Compression", ICML 2021, Theorem 4.1 (number and form from
+    memory; THEORY.md re-derives the form): p = zeta r/(d n) clipped to (0, 1],
+    gamma = 1/(L + L_QM sqrt((1-p)(1+omega)/(p r))), E||grad f(x_hat)||^2 <=
+    2 Delta0/(gamma K). Bits per worker (the mean over workers of what each sent):
+    32 d + K (p 32 d + (1-p) r bits(Q)/n). ``clients`` defaults to n.
+    """
+    c, omega, n = constants, compressor.omega, constants.n_workers
+    r = n if clients is None else clients
+    if isinstance(r, (bool, np.bool_)) or not isinstance(r, (int, np.integer)) or not 1 <= r <= n:
+        raise ValueError(f"clients must be an integer in [1, {n}], got {clients!r}")
+    r = int(r)
+    p = min(1.0, compressor.density * r / (compressor.dim * n))  # density >= 1, so p > 0
+    gamma = 1.0 / (c.L + c.L_qm * math.sqrt((1.0 - p) * (1.0 + omega) / (p * r)))
+    rounds = _rounds(2.0 * c.delta0 / gamma, target)
+    per_round = p * dense_bits(c.dim) + (1.0 - p) * r * compressor.nominal_bits / n
+    return _point("pp_marina", compressor, gamma, rounds, dense_bits(c.dim) + rounds * per_round,
+                  "Gorbunov et al. 2021, Thm 4.1 (from memory)", sync=p, clients=r)
 
 
 def ef21_rule(compressor: Compressor, constants: Constants, *, target: float,
@@ -181,6 +234,7 @@ def ef21_rule(compressor: Compressor, constants: Constants, *, target: float,
 #: One rule per method name (the keys of :data:`bittune.methods.METHODS`).
 RULES: dict[str, Callable[..., TheoryPoint]] = {
     "gd": gd_rule, "dcgd": dcgd_rule, "diana": diana_rule, "marina": marina_rule, "ef21": ef21_rule,
+    "pp_marina": pp_marina_rule,
 }
 
 
@@ -199,28 +253,53 @@ def _check_constants(c: Constants) -> None:
         raise ValueError("; ".join(problems))
 
 
-def _fits(method: str, comp: Compressor) -> bool:
-    """GD sends dense gradients; DCGD, DIANA and MARINA need an unbiased Q; EF21 takes any."""
+def fits(method: str, comp: Compressor) -> bool:
+    """Whether ``method``'s theory rule applies to ``comp``.
+
+    GD sends dense gradients; DCGD, DIANA, MARINA and PP-MARINA need an unbiased
+    Q; EF21 takes any.
+
+    Correlated compressors (PermK) fit MARINA (its AB theorem, THEORY.md 2.8) and EF21
+    (a per-worker analysis); the DCGD, DIANA and PP-MARINA rules assume independent Q_i.
+    """
     if method == "gd":
         return comp.name == "identity"
-    return comp.unbiased or method == "ef21"
+    if method == "ef21":
+        return True
+    return comp.unbiased and (method == "marina" or not comp.correlated)
+
+
+_fits = fits  # the older private name
+
+
+def _needs(method: str, comp: Compressor) -> str:
+    if method == "gd":
+        return "identity"
+    if comp.unbiased and comp.correlated:
+        return "independent compressors (its theory rule assumes independent Q_i)"
+    return "an unbiased compressor"
 
 
 def theory_point(method: str, compressor: Compressor | str | Mapping, constants: Constants, *,
-                 target: float, contraction: float | None = None) -> TheoryPoint:
+                 target: float, contraction: float | None = None,
+                 clients: int | None = None) -> TheoryPoint:
     """The theory setting of ``method`` with ``compressor`` (object or spec like "rand_k:6").
 
     ``target`` is the absolute target on ||grad f||^2; ``contraction`` overrides
-    the compressor's alpha for rules that take one (EF21).
+    the compressor's alpha for rules that take one (EF21); ``clients`` is the r
+    of PP-MARINA (default n). A spec is built for ``constants.n_workers`` workers.
     """
     if method not in RULES:
         raise ValueError(f"method must be one of {', '.join(RULES)}, got {method!r}")
-    comp = compressor if isinstance(compressor, Compressor) else make_compressor(compressor, constants.dim)
+    comp = compressor if isinstance(compressor, Compressor) else make_compressor(
+        compressor, constants.dim, n_workers=constants.n_workers)
     if comp.dim != constants.dim:
         raise ValueError(f"compressor {comp.label()} has dim {comp.dim}, constants.dim is {constants.dim}")
-    if not _fits(method, comp):
-        need = "identity" if method == "gd" else "an unbiased compressor"
-        raise ValueError(f"{method} needs {need}, got {comp.label()}")
+    if comp.needs_workers and comp.n_workers != constants.n_workers:
+        raise ValueError(f"compressor {comp.label()} is built for {comp.n_workers} workers, "
+                         f"constants.n_workers is {constants.n_workers}")
+    if not fits(method, comp):
+        raise ValueError(f"{method} needs {_needs(method, comp)}, got {comp.label()}")
     target = float(target)
     if not (math.isfinite(target) and target > 0):
         raise ValueError(f"target must be a finite number > 0, got {target!r}")
@@ -231,44 +310,51 @@ def theory_point(method: str, compressor: Compressor | str | Mapping, constants:
         if "alpha" not in inspect.signature(rule).parameters:
             raise ValueError(f"contraction applies to ef21 only, not to {method}")
         kwargs["alpha"] = contraction
+    if clients is not None:
+        if "clients" not in inspect.signature(rule).parameters:
+            raise ValueError(f"clients applies to pp_marina only, not to {method}")
+        kwargs["clients"] = clients
     return rule(comp, constants, target=target, **kwargs)
 
 
-def default_compressor_specs(dim: int) -> dict[str, list[str]]:
+def default_compressor_specs(dim: int, *, n_workers: int | None = None) -> dict[str, list[str]]:
     """Per method, a sensible set of compressors for dimension ``dim``.
 
     K covers 1%, 5%, 10% and 25% of d (common practice, no source); identity
-    only for GD (with it, the other methods reduce to GD).
+    only for GD (with it, the other methods reduce to GD). With ``n_workers``
+    (PermK is built for one n), MARINA also gets perm_k (THEORY.md 2.8).
     """
     ks = sorted({max(1, round(dim * f)) for f in (0.01, 0.05, 0.1, 0.25)} - {dim})
     rand = [f"rand_k:{k}" for k in ks]
-    unbiased = rand + ["dither:2", "dither:4", "natural"]
-    return {"gd": ["identity"], "dcgd": unbiased, "diana": unbiased, "marina": unbiased,
-            "ef21": [f"top_k:{k}" for k in ks] + rand}
+    unbiased = rand + ["dither:2", "dither:4", "natural", "natural_dither:3"]
+    marina = unbiased + (["perm_k"] if n_workers is not None and n_workers > 1 else [])
+    return {"gd": ["identity"], "dcgd": unbiased, "diana": unbiased, "marina": marina,
+            "pp_marina": unbiased, "ef21": [f"top_k:{k}" for k in ks] + rand}
 
 
 def theory_table(constants: Constants, *, target: float, dim: int | None = None,
-                 methods: Sequence[str] = ("gd", "dcgd", "diana", "marina", "ef21"),
+                 methods: Sequence[str] = ("gd", "dcgd", "diana", "marina", "pp_marina", "ef21"),
                  compressors: Sequence[str | Mapping] | None = None,
                  contraction_vectors: np.ndarray | None = None) -> list[TheoryPoint]:
     """Theory points for every method x fitting compressor, in that order.
 
     ``compressors`` default to :func:`default_compressor_specs`; a given list is
-    filtered per method (GD: identity; DCGD/DIANA/MARINA: unbiased; EF21: any).
+    filtered per method (GD: identity; DCGD/DIANA/PP-MARINA: unbiased and
+    independent; MARINA: unbiased, PermK included; EF21: any). PP-MARINA rows use r = n.
     With ``contraction_vectors`` (e.g. local gradients, (B, n, d) or (m, d)),
     EF21 with a biased (deterministic) compressor uses the measured contraction.
     """
     if dim is not None and dim != constants.dim:
         raise ValueError(f"dim is {dim} but constants.dim is {constants.dim}")
-    defaults = default_compressor_specs(constants.dim)
+    defaults = default_compressor_specs(constants.dim, n_workers=constants.n_workers)
     rows = []
     for method in methods:
         if method not in RULES:
             raise ValueError(f"methods: unknown method {method!r} (known: {', '.join(RULES)})")
         specs = defaults[method] if compressors is None else compressors
         for spec in specs:
-            comp = make_compressor(spec, constants.dim, key="compressors")
-            if not _fits(method, comp):
+            comp = make_compressor(spec, constants.dim, key="compressors", n_workers=constants.n_workers)
+            if not fits(method, comp):
                 continue
             alpha = None
             if method == "ef21" and contraction_vectors is not None and not comp.unbiased:

@@ -81,11 +81,13 @@ def apply_overrides(job: Job, overrides: dict) -> Job:
     return replace(job, search=replace(job.search, **overrides)) if overrides else job
 
 
-def prepare(job_path, overrides: dict, log) -> Prepared:
+def prepare(job_path, overrides: dict, log, *, allow_code: bool = False) -> Prepared:
     """Load the job, build the problem, run the probe (exit 3 on a bad gradient), build the space."""
+    from dataclasses import replace
+
     optuna.logging.set_verbosity(optuna.logging.WARNING)  # our own progress lines instead
     overrides = {k: v for k, v in overrides.items() if v is not None}
-    job = apply_overrides(load_job(job_path), overrides)
+    job = replace(apply_overrides(load_job(job_path), overrides), allow_code=allow_code)
     ws = open_job(job)
     log.note(f"problem: {ws.problem.n_workers} workers, d = {ws.problem.dim}, "
              f"{int(ws.problem.worker_sizes.sum())} samples; target ||grad f||^2 <= {ws.target:.3g}")
@@ -177,7 +179,7 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
 
             Parallel(n_jobs=spec.jobs, backend="loky")(
                 delayed(worker_main)(str(job.path), storage_url, name, spec.trials, sampler_seeds[i], i,
-                                     prep.overrides)
+                                     prep.overrides, job.allow_code)
                 for i in range(spec.jobs))
     finally:
         watcher.stop()
@@ -198,14 +200,14 @@ def _wait_for_budget(study, budget: int, poll: float = 1.0) -> None:
 
 def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None, seed: int | None = None,
          run_dir=None, storage: str | None = None, report_dir=None, workers_only: bool = False,
-         progress=None) -> TuneResult:
+         allow_code: bool = False, progress=None) -> TuneResult:
     """Tune the job and write the config to ``output`` and the report (default: RUN_DIR/report)."""
     output = Path(output)
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
     storage_url = storage or str(run_dir / "study.journal")
     job0 = load_job(job_path)
     log = progress or _Progress(total=trials or job0.search.trials)
-    prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log)
+    prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log, allow_code=allow_code)
     study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only)
     log.note("select: validating the best candidates on fresh seeds")
     selection = select(prep.ws, prep.space, study, prep.network)
@@ -227,7 +229,8 @@ def trial_counts(study) -> dict:
 
 
 def worker_main(job_path: str, storage_url: str, name: str, budget: int | None = None,
-                sampler_seed: int | None = None, index: int = 0, overrides: dict | None = None) -> int:
+                sampler_seed: int | None = None, index: int = 0, overrides: dict | None = None,
+                allow_code: bool = False) -> int:
     """One worker process (``--jobs`` or ``bittune worker``): rebuild the problem, read the probe's
     constants, search settings and budget from the study, run trials until the budget is spent."""
     from threadpoolctl import threadpool_limits
@@ -252,7 +255,9 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int | None =
         if "constants" not in attrs:
             raise InputError(f"--study: study {name!r} has no probe constants yet (start the coordinator first)")
         overrides = attrs.get("search_overrides", {}) if overrides is None else overrides
-        job = apply_overrides(job, overrides)
+        from dataclasses import replace
+
+        job = replace(apply_overrides(job, overrides), allow_code=allow_code)
         ws = open_job(job)
         if sampler_seed is None:
             sampler_seed = int(np.random.SeedSequence().generate_state(1)[0])  # fresh entropy per worker

@@ -1,0 +1,44 @@
+"""Helpers for models whose pass multiplies the data by K weight vectors per iterate.
+
+Softmax regression (K = classes) and the MLP's first layer (K = hidden units)
+need ``A_i w_k`` for K vectors ``w_k`` per iterate. Stacking the K vectors of
+B iterates as B*K rows turns this into one call of
+:meth:`~bittune.problems._shards.Block.forward` / ``backward``, so these models
+reuse the padded per-worker layout, its sparse path and its threads unchanged.
+
+Their intermediates have K * n * m_max numbers per iterate (K times a linear
+model's); :func:`batch_slices` cuts a large batch so that no intermediate
+exceeds ``MAX_ELEMENTS`` numbers.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["MAX_ELEMENTS", "batch_slices", "stack_rows", "unstack_rows"]
+
+#: Numbers per (B, K, n, m_max) intermediate in one pass: 2^23 float64 = 64 MiB
+#: (our choice, no source: a pass keeps about three such arrays alive).
+MAX_ELEMENTS = 2**23
+
+
+def batch_slices(batch: int, *, width: int, n_workers: int, m_max: int) -> list[slice]:
+    """Slices of ``range(batch)`` so that each chunk has at most MAX_ELEMENTS intermediates."""
+    per_point = max(1, width * n_workers * m_max)
+    step = max(1, MAX_ELEMENTS // per_point)
+    return [slice(s, min(s + step, batch)) for s in range(0, batch, step)]
+
+
+def stack_rows(W: np.ndarray) -> np.ndarray:
+    """Weights (B, K, d) or (B, n, K, d) as Block.forward input (B*K, d) or (B*K, n, d)."""
+    if W.ndim == 3:
+        B, K, d = W.shape
+        return W.reshape(B * K, d)
+    B, n, K, d = W.shape
+    return np.ascontiguousarray(W.transpose(0, 2, 1, 3)).reshape(B * K, n, d)
+
+
+def unstack_rows(out: np.ndarray, batch: int) -> np.ndarray:
+    """Block.backward output (B*K, nb, d) as (B, nb, K, d) (a view)."""
+    BK, nb, d = out.shape
+    return out.reshape(batch, BK // batch, nb, d).transpose(0, 2, 1, 3)
