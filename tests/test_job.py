@@ -233,7 +233,8 @@ ERRORS = [
     (dict(regularization=-0.5), "regularization: must be a number >= 0, got -0.5"),
     (dict(modle="least_squares"), "modle: unknown key (did you mean 'model'?)"),
     (dict(probe={"safety": 0.5}), "probe.safety: must be a number >= 1, got 0.5"),
-    (dict(probe={"runs": 0}), "probe.runs: must be an integer >= 1, got 0"),
+    (dict(probe={"runs": 0}), "probe.runs: must be an integer in [1, 100], got 0"),
+    (dict(probe={"power_iters": 10**23}), "probe.power_iters: must be an integer in [1, 10000], got 100000000000000000000000"),
     (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, objective, plugin, data, workers, "
                   "target, budget, mlp, network, probe, search, start)"),
     (dict(objective="joules"), "objective: must be one of bits, seconds, got 'joules'"),

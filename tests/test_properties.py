@@ -530,7 +530,9 @@ def test_python_config_mappings(doc, where, key, value) -> None:
     ("a: !!int xx", "y:1: invalid YAML: cannot read 'xx' as int"),  # ValueError from a scalar constructor
     ("a: !!float xx", "y:1: invalid YAML: cannot read 'xx' as float"),
     ("a: 2020-13-45", "y:1: invalid YAML: cannot read '2020-13-45' as timestamp"),
-    ("\n\na: " + "1" * 5000, "y:3: invalid YAML: cannot read"),    # Python's 4300-digit int limit
+    # Python refuses int() of more than 4300 decimal digits (Python 3.11 docs, "Integer string
+    # conversion length limitation"; sys.int_info.default_max_str_digits)
+    ("\n\na: " + "1" * 5000, "y:3: invalid YAML: cannot read"),
     ("[" * 1000 + "]" * 1000, "y: invalid YAML: nested too deeply"),  # RecursionError
 ])
 def test_yaml_reader_errors_are_input_errors(text, fragment) -> None:
@@ -567,7 +569,8 @@ def test_huge_integers_are_rejected_or_shown_not_crashed(folder: Path) -> None:
 
 @pytest.mark.parametrize("path, fragment", [
     ("~nobody-here/x.svm", "data.path: cannot expand '~nobody-here/x.svm'"),  # RuntimeError from expanduser
-    ("a" * 300 + ".svm", "data.path: cannot use the path"),                  # OSError ENAMETOOLONG from exists()
+    # OSError ENAMETOOLONG from exists(): a name over NAME_MAX = 255 bytes (Linux limits.h; from memory)
+    ("a" * 300 + ".svm", "data.path: cannot use the path"),
     ("x\x00.svm", "data.path: a path cannot hold a NUL character, got 'x\\x00.svm'"),
 ])
 def test_unusable_paths_are_input_errors(folder: Path, path: str, fragment: str) -> None:
@@ -701,3 +704,15 @@ def test_odd_tags_are_yaml_errors(text: str) -> None:
     # TypeError from the duplicate-key check on a non-mapping or unhashable key.
     with pytest.raises(InputError, match="invalid YAML"):
         parse_yaml(text, source="y")
+
+
+def test_dirichlet_alpha_near_the_float_limit_is_an_input_error() -> None:
+    # Found by hand next to the properties: numpy's Dirichlet sampler returns all zeros for
+    # alpha = 1.7e308, which used to surface as "left 2 of 3 workers with no samples".
+    from bittune.data import partition
+
+    ds = Dataset(X=np.ones((20, 2)), y=np.repeat([0.0, 1.0], 10), groups=None, source="s")
+    assert [p.size for p in partition(ds, n_workers=3, split="dirichlet", seed=0, dirichlet_alpha=1e300)] \
+        == [6, 8, 6]  # huge alpha: shares 1/3 each, so per label of 10 rows cuts at 3 and 7 -> 3, 4, 3
+    with pytest.raises(InputError, match="workers.dirichlet_alpha: 1.7e.308 is too large"):
+        partition(ds, n_workers=3, split="dirichlet", seed=0, dirichlet_alpha=1.7e308)

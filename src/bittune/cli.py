@@ -36,7 +36,7 @@ def _cmd_replay(args: argparse.Namespace) -> int:
 
     cfg = load_config(args.config)
     ws = open_job(_load_job(args))
-    runs = replay(ws, cfg, seeds=range(args.seed, args.seed + args.seeds))
+    runs = replay(ws, cfg, seeds=range(args.seed, args.seed + args.seeds), source=str(args.config))
     doc = summarize(runs)
     doc["config"] = str(args.config)
     doc["problem"] = ws.summary()

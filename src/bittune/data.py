@@ -388,6 +388,9 @@ def partition(
             rows = np.flatnonzero(y == label)
             rng.shuffle(rows)
             share = rng.dirichlet(np.full(n_workers, float(dirichlet_alpha)))
+            if not (np.all(np.isfinite(share)) and share.sum() > 0.5):  # numpy gives 0s near the float limit
+                raise InputError(f"workers.dirichlet_alpha: {dirichlet_alpha:g} is too large to sample "
+                                 f"proportions from; use workers.split: iid for an even mix")
             cuts = np.round(np.cumsum(share)[:-1] * rows.size).astype(np.int64)
             for w, chunk in enumerate(np.split(rows, np.clip(cuts, 0, rows.size))):
                 pieces[w].append(chunk)

@@ -182,10 +182,11 @@ SECTIONS: dict[str, dict[str, Param]] = {
         "compute_seconds": Param("real", low=0),  # default: measured by the probe
     },
     "probe": {
-        "runs": Param("int", low=1, default=3),
-        "run_rounds": Param("int", low=1, default=30),
-        "points_per_run": Param("int", low=1, default=4),
-        "power_iters": Param("int", low=1, default=30),
+        # Upper bounds keep a typo from hanging the probe (our choice, no source).
+        "runs": Param("int", low=1, high=100, default=3),
+        "run_rounds": Param("int", low=1, high=100_000, default=30),
+        "points_per_run": Param("int", low=1, high=100, default=4),
+        "power_iters": Param("int", low=1, high=10_000, default=30),
         "safety": Param("real", low=1.0, default=1.0),
         "gradient_tolerance": Param("real", low=0, closed="right", default=1e-5),
         "seed": Param("int", low=0, default=0),

@@ -384,7 +384,6 @@ def probe_workspace(ws, *, strict: bool = True) -> tuple[Constants, ProbeReport]
             run_rounds=spec.run_rounds, points_per_run=spec.points_per_run, power_iters=spec.power_iters,
             safety=spec.safety, lower_bound=spec.lower_bound, gradient_tolerance=spec.gradient_tolerance,
             strict=strict)
-    except ValueError as exc:
-        if "lower_bound" in str(exc):
-            raise InputError(f"probe.lower_bound: {exc}", source=str(ws.job.path)) from None
-        raise
+    except ValueError as exc:  # every ValueError here is about the job's input
+        key = "probe.lower_bound" if "lower_bound" in str(exc) else "start"
+        raise InputError(f"{key}: {exc}", source=str(ws.job.path)) from None

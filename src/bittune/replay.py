@@ -12,10 +12,10 @@ from .workspace import Workspace
 __all__ = ["replay", "summarize"]
 
 
-def replay(ws: Workspace, cfg: Config, *, seeds) -> list[Trajectory]:
-    """Simulate ``cfg`` on the workspace's problem, one trajectory per seed, in one batch."""
+def replay(ws: Workspace, cfg: Config, *, seeds, source: str = "config") -> list[Trajectory]:
+    """Simulate ``cfg`` (read from ``source``) on the workspace's problem, one trajectory per seed."""
     p = ws.problem
-    check_config_fits(cfg, dimension=p.dim, workers=p.n_workers, source="config")
+    check_config_fits(cfg, dimension=p.dim, workers=p.n_workers, source=source)
     comp = make_compressor(cfg.compressor, p.dim, key="compressor", n_workers=p.n_workers)
     params = {}
     if cfg.method in ("marina", "pp_marina") and cfg.sync_probability is not None:
