@@ -468,7 +468,12 @@ def open_storage(url: str):
 
 def open_study(storage, name: str, *, sampler_seed: int, pruner: str) -> optuna.Study:
     sampler = optuna.samplers.TPESampler(seed=sampler_seed)
-    prune = (optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=3)
+    # A gentle median-style pruner: stop a trial only when its progress at a cost checkpoint
+    # is in the worst quarter of the trials seen there, after 10 trials and 5 checkpoints.
+    # Measured on the tuning benchmark's MARINA study: plain median pruning from the 4th
+    # checkpoint stopped 51 of 60 trials, many of which would have reached the target at
+    # fewer bits than the best trial kept, and saved under 10% of the wall time.
+    prune = (optuna.pruners.PercentilePruner(75.0, n_startup_trials=10, n_warmup_steps=5)
              if pruner == "median" else optuna.pruners.NopPruner())
     return optuna.load_study(study_name=name, storage=storage, sampler=sampler, pruner=prune)
 
