@@ -15,7 +15,9 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["MAX_ELEMENTS", "batch_slices", "stack_rows", "unstack_rows"]
+from .base import Problem
+
+__all__ = ["MAX_ELEMENTS", "StackedProblem", "batch_slices", "stack_rows", "unstack_rows"]
 
 #: Numbers per (B, K, n, m_max) intermediate in one pass: 2^23 float64 = 64 MiB
 #: (our choice, no source: a pass keeps about three such arrays alive).
@@ -42,3 +44,38 @@ def unstack_rows(out: np.ndarray, batch: int) -> np.ndarray:
     """Block.backward output (B*K, nb, d) as (B, nb, K, d) (a view)."""
     BK, nb, d = out.shape
     return out.reshape(batch, BK // batch, nb, d).transpose(0, 2, 1, 3)
+
+
+class StackedProblem(Problem):
+    """The oracle of models whose pass stacks ``_stack_width`` weight columns per iterate
+    (softmax: classes, MLP: hidden units): slices the batch to bound memory, runs the
+    model's ``_pass`` on each slice, adds the regulariser."""
+
+    _stack_width: int
+
+    def local_grads(
+        self, X: np.ndarray, *, with_loss: bool = False
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Gradients (B, n, D) of every f_i, and their values (B, n) if asked."""
+        X = self._check(X)
+        B = X.shape[0]
+        grads = np.empty((B, self.n_workers, self.dim))
+        loss = np.empty((B, self.n_workers)) if with_loss else None
+        for s in self._slices(B):
+            self._pass(X[s], grads[s], None if loss is None else loss[s])
+        Xw = X if X.ndim == 3 else X[:, None, :]
+        grads += self._reg_grad(Xw)
+        if loss is not None:
+            loss += self._reg_value(Xw)
+        return grads, loss
+
+    def local_losses(self, X: np.ndarray) -> np.ndarray:
+        """Values (B, n) of every f_i."""
+        X = self._check(X)
+        loss = np.empty((X.shape[0], self.n_workers))
+        for s in self._slices(X.shape[0]):
+            self._pass(X[s], None, loss[s])
+        return loss + self._reg_value(X if X.ndim == 3 else X[:, None, :])
+
+    def _slices(self, batch: int) -> list[slice]:
+        return batch_slices(batch, width=self._stack_width, n_workers=self.n_workers, m_max=self.shards.m_max)

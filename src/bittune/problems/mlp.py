@@ -36,8 +36,7 @@ from __future__ import annotations
 import numpy as np
 
 from ._shards import Block, Shards
-from ._stacked import batch_slices, stack_rows, unstack_rows
-from .base import Problem
+from ._stacked import StackedProblem, stack_rows, unstack_rows
 
 __all__ = ["MLP", "ACTIVATIONS", "LOSSES", "default_start", "mlp_dim"]
 
@@ -80,7 +79,7 @@ def default_start(dim: int, seed: int, *, hidden: int = DEFAULT_HIDDEN, activati
     return np.concatenate([W1.ravel(), np.zeros(h), w2, [0.0]])
 
 
-class MLP(Problem):
+class MLP(StackedProblem):
     """Two-layer perceptron on sharded rows (targets -1/+1 for the logistic loss)."""
 
     name = "mlp"
@@ -137,32 +136,9 @@ class MLP(Problem):
         return default_start(self.dim, seed, hidden=self.hidden, activation=self.activation)
 
     # --------------------------------------------------------------- oracle
-    def local_grads(
-        self, X: np.ndarray, *, with_loss: bool = False
-    ) -> tuple[np.ndarray, np.ndarray | None]:
-        """Gradients (B, n, D) of every f_i, and their values (B, n) if asked."""
-        X = self._check(X)
-        B = X.shape[0]
-        grads = np.empty((B, self.n_workers, self.dim))
-        loss = np.empty((B, self.n_workers)) if with_loss else None
-        for s in self._slices(B):
-            self._pass(X[s], grads[s], None if loss is None else loss[s])
-        Xw = X if X.ndim == 3 else X[:, None, :]
-        grads += self._reg_grad(Xw)
-        if loss is not None:
-            loss += self._reg_value(Xw)
-        return grads, loss
-
-    def local_losses(self, X: np.ndarray) -> np.ndarray:
-        """Values (B, n) of every f_i."""
-        X = self._check(X)
-        loss = np.empty((X.shape[0], self.n_workers))
-        for s in self._slices(X.shape[0]):
-            self._pass(X[s], None, loss[s])
-        return loss + self._reg_value(X if X.ndim == 3 else X[:, None, :])
-
-    def _slices(self, batch: int) -> list[slice]:
-        return batch_slices(batch, width=self.hidden, n_workers=self.n_workers, m_max=self.shards.m_max)
+    @property
+    def _stack_width(self) -> int:
+        return self.hidden
 
     def _pass(self, X: np.ndarray, grads: np.ndarray | None, loss: np.ndarray | None) -> None:
         """Forward and backward pass for the iterates X (B, D) or (B, n, D), every worker."""

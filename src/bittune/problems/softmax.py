@@ -35,8 +35,7 @@ import numpy as np
 
 from ..errors import InputError
 from ._shards import Block, Shards
-from ._stacked import batch_slices, stack_rows, unstack_rows
-from .base import Problem
+from ._stacked import StackedProblem, stack_rows, unstack_rows
 
 __all__ = ["Softmax", "class_labels"]
 
@@ -60,7 +59,7 @@ def class_labels(y: np.ndarray, *, source: str) -> tuple[np.ndarray, np.ndarray]
     return codes.reshape(y.shape).astype(np.float64), classes
 
 
-class Softmax(Problem):
+class Softmax(StackedProblem):
     """Softmax regression on sharded rows whose targets are class codes 0..C-1."""
 
     name = "softmax"
@@ -104,32 +103,9 @@ class Softmax(Problem):
         return np.ascontiguousarray(W.swapaxes(-1, -2)).reshape(*W.shape[:-2], -1)
 
     # --------------------------------------------------------------- oracle
-    def local_grads(
-        self, X: np.ndarray, *, with_loss: bool = False
-    ) -> tuple[np.ndarray, np.ndarray | None]:
-        """Gradients (B, n, C*d) of every f_i, and their values (B, n) if asked."""
-        X = self._check(X)
-        B = X.shape[0]
-        grads = np.empty((B, self.n_workers, self.dim))
-        loss = np.empty((B, self.n_workers)) if with_loss else None
-        for s in self._slices(B):
-            self._pass(X[s], grads[s], None if loss is None else loss[s])
-        Xw = X if X.ndim == 3 else X[:, None, :]
-        grads += self._reg_grad(Xw)
-        if loss is not None:
-            loss += self._reg_value(Xw)
-        return grads, loss
-
-    def local_losses(self, X: np.ndarray) -> np.ndarray:
-        """Values (B, n) of every f_i."""
-        X = self._check(X)
-        loss = np.empty((X.shape[0], self.n_workers))
-        for s in self._slices(X.shape[0]):
-            self._pass(X[s], None, loss[s])
-        return loss + self._reg_value(X if X.ndim == 3 else X[:, None, :])
-
-    def _slices(self, batch: int) -> list[slice]:
-        return batch_slices(batch, width=self.n_classes, n_workers=self.n_workers, m_max=self.shards.m_max)
+    @property
+    def _stack_width(self) -> int:
+        return self.n_classes
 
     def _pass(self, X: np.ndarray, grads: np.ndarray | None, loss: np.ndarray | None) -> None:
         """One pass over the data for the iterates X (B, C*d) or (B, n, C*d)."""
