@@ -201,7 +201,7 @@ def deal(batches: list[list], jobs: int) -> list[list[int]]:
     return [sorted(p) for p in parts]  # each process runs its batches from large K down
 
 
-def grid_worker(job_path: str, batches: list, factor: float, threads: int) -> list[list[dict]]:
+def grid_worker(job_path: str, batches: list, *, factor: float, threads: int) -> list[list[dict]]:
     """Score every point of ``batches`` like a trial (one engine batch per (K, p): steps x seeds)."""
     from threadpoolctl import threadpool_limits
 
@@ -243,13 +243,14 @@ def evaluate_grid(job_path: Path, points: list[Candidate], *, factor: float, job
     """Scores of ``points`` in their order; the batches are dealt to ``jobs`` processes."""
     batches = grid_batches(points)
     if jobs == 1:
-        results = grid_worker(str(job_path), batches, factor, threads=2)
+        results = grid_worker(str(job_path), batches, factor=factor, threads=2)
     else:
         from joblib import Parallel, delayed
 
         parts = deal(batches, jobs)
         done = Parallel(n_jobs=jobs, backend="loky")(
-            delayed(grid_worker)(str(job_path), [batches[i] for i in part], factor, 1) for part in parts)
+            delayed(grid_worker)(str(job_path), [batches[i] for i in part], factor=factor, threads=1)
+            for part in parts)
         results = [None] * len(batches)
         for part, res in zip(parts, done):
             for i, r in zip(part, res):
@@ -303,7 +304,7 @@ def plain_optuna(ws, seeds: list[int], *, trials: int, factor: float, log: Log) 
 
 
 # ---------------------------------------------------------------------- report
-def row(setting: str, e: Evaluation, evals) -> str:
+def row(setting: str, e: Evaluation, *, evals: int) -> str:
     c = e.candidate
     k = c.compressor.get("k", c.compressor.get("levels", "-"))
     p = "-" if c.sync_probability is None else f"{c.sync_probability:.4f}"
@@ -332,15 +333,16 @@ def paired_interval(x: Evaluation, y: Evaluation, *, level: float = 0.9, draws: 
 
 def ratio_text(x: Evaluation, y: Evaluation) -> str:
     lo, hi = paired_interval(x, y)
-    return f"ratio {x.mean_bits / y.mean_bits:.3f}, 90% paired-bootstrap interval {lo:.2f}..{hi:.2f} over {len(x.runs)} seeds"
+    return (f"ratio {x.mean_bits / y.mean_bits:.3f}, 90% paired-bootstrap interval {lo:.2f}..{hi:.2f} "
+            f"over {len(x.runs)} seeds")
 
 
-def check(text: str, ok: bool, detail: str) -> bool:
+def check(text: str, *, ok: bool, detail: str) -> bool:
     print(f"  {'met   ' if ok else 'MISSED'}  {text}: {detail}")
     return ok
 
 
-def run_tune(job: Path, out: Path, *, trials: int, jobs: int, label: str):
+def run_tune(job: Path, out: Path, *, trials: int, jobs: int, label: str) -> tuple:
     """Tune in a fresh run folder; returns the result and the wall time in seconds."""
     log = Log(label)
     t0 = time.perf_counter()
@@ -363,8 +365,8 @@ def other_method(folder: Path, method: str, *, trials: int, validation: int, job
     sel = result.selection
     print(f"\n{method.upper()} (compressors rand_k, dither; {trials} trials, jobs={jobs}, {wall:.0f} s)")
     print(HEADER)
-    print(row("(a) theory", sel.baseline, 1))
-    print(row("(b) bittune", sel.winner, trials + validations(sel)))
+    print(row("(a) theory", sel.baseline, evals=1))
+    print(row("(b) bittune", sel.winner, evals=trials + validations(sel)))
     comp = sel.baseline.candidate.compressor
     if comp.get("k") == D:
         print(f"  note: theory's cheapest density is rand_k:{D} (omega = 0, DCGD is GD): its step is 1/L, not timid")
@@ -461,10 +463,10 @@ def main() -> int:
               f"({len(steps)}) x p multiplier {list(syncs)} = {len(ks) * len(steps) * len(syncs)} combinations, "
               f"{len(points)} distinct (p = min(1, mult K/d) merges some at large K); {wall_grid:.0f} s")
         print(HEADER)
-        print(row("(a) theory", a, 1))
-        print(row(f"(b) bittune, {trials} trials", b, evals_b))
-        print(row(f"(c) grid best of {len(points)}", c, len(points) + 1))
-        print(row(f"(d) plain Optuna, {n_d} trials", d, n_d + 1))
+        print(row("(a) theory", a, evals=1))
+        print(row(f"(b) bittune, {trials} trials", b, evals=evals_b))
+        print(row(f"(c) grid best of {len(points)}", c, evals=len(points) + 1))
+        print(row(f"(d) plain Optuna, {n_d} trials", d, evals=n_d + 1))
         print(f"wall: tune jobs=1 {wall1:.0f} s (trials {res1.trials}), jobs=2 {wall2:.0f} s (trials {res2.trials}, "
               f"winner {res2.selection.winner.mean_bits:,.0f} bits); grid {wall_grid:.0f} s; "
               f"plain Optuna {wall_plain:.0f} s")
@@ -478,17 +480,17 @@ def main() -> int:
         print("\nchecks" + (" (quick mode: not meaningful)" if args.quick else ""))
         reached_b = b.all_reached
         goals = [
-            check("(b) fewer bits than (a)", reached_b and b.mean_bits < a.mean_bits,
-                  f"{b.mean_bits:,.0f} vs {a.mean_bits:,.0f} ({a.mean_bits / b.mean_bits:.2f}x"
+            check("(b) fewer bits than (a)", ok=reached_b and b.mean_bits < a.mean_bits,
+                  detail=f"{b.mean_bits:,.0f} vs {a.mean_bits:,.0f} ({a.mean_bits / b.mean_bits:.2f}x"
                   f"{'' if a.all_reached else ', lower bound'})"),
-            check("(b) within 5% of the grid's best (c)", reached_b and b.mean_bits <= 1.05 * c.mean_bits,
-                  f"{b.mean_bits:,.0f} vs {c.mean_bits:,.0f} ({ratio_text(b, c)})"),
-            check("(b) uses at most a tenth of the grid's evaluations", evals_b <= len(points) / 10,
-                  f"{evals_b} vs {len(points)} / 10 = {len(points) / 10:.1f}"),
-            check("(b) no worse than plain Optuna (d)", reached_b and b.mean_bits <= d.mean_bits,
-                  f"{b.mean_bits:,.0f} vs {d.mean_bits:,.0f} ({ratio_text(b, d)})"),
-            check("tune --jobs 2 at least 1.6x faster than --jobs 1", wall1 / wall2 >= 1.6,
-                  f"{wall1:.0f} s / {wall2:.0f} s = {wall1 / wall2:.2f}x (load average now "
+            check("(b) within 5% of the grid's best (c)", ok=reached_b and b.mean_bits <= 1.05 * c.mean_bits,
+                  detail=f"{b.mean_bits:,.0f} vs {c.mean_bits:,.0f} ({ratio_text(b, c)})"),
+            check("(b) uses at most a tenth of the grid's evaluations", ok=evals_b <= len(points) / 10,
+                  detail=f"{evals_b} vs {len(points)} / 10 = {len(points) / 10:.1f}"),
+            check("(b) no worse than plain Optuna (d)", ok=reached_b and b.mean_bits <= d.mean_bits,
+                  detail=f"{b.mean_bits:,.0f} vs {d.mean_bits:,.0f} ({ratio_text(b, d)})"),
+            check("tune --jobs 2 at least 1.6x faster than --jobs 1", ok=wall1 / wall2 >= 1.6,
+                  detail=f"{wall1:.0f} s / {wall2:.0f} s = {wall1 / wall2:.2f}x (load average now "
                   f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)"),
         ]
 
@@ -497,8 +499,9 @@ def main() -> int:
                                validation=args.validation_seeds, pruner="none")
             res_np, wall_np = run_tune(job_np, folder, trials=trials, jobs=2, label="unpruned")
             e = res_np.selection.winner
-            print(f"\nfor comparison, bittune with search.pruner: none (jobs=2, {wall_np:.0f} s, trials {res_np.trials}):")
-            print(row("(b') bittune, no pruner", e, trials + validations(res_np.selection)))
+            print(f"\nfor comparison, bittune with search.pruner: none (jobs=2, {wall_np:.0f} s, "
+                  f"trials {res_np.trials}):")
+            print(row("(b') bittune, no pruner", e, evals=trials + validations(res_np.selection)))
             print(f"  (b')/(c): {ratio_text(e, c)}")
             print(f"  (b')/(d): {ratio_text(e, d)}")
 
@@ -506,7 +509,8 @@ def main() -> int:
             more = [2_000_000 + SEED * 1000 + j for j in range(args.confirm_seeds)]
             t0 = time.perf_counter()
             cb, cc, cd = evaluate(ws, [b.candidate, c.candidate, d.candidate], more)
-            print(f"\nconfirmation on {len(more)} more fresh seeds (not part of the checks; {time.perf_counter() - t0:.0f} s): "
+            print(f"\nconfirmation on {len(more)} more fresh seeds (not part of the checks; "
+                  f"{time.perf_counter() - t0:.0f} s): "
                   f"(b) {cb.mean_bits:,.0f} ({sum(r.reached for r in cb.runs)} reached), "
                   f"(c) {cc.mean_bits:,.0f} ({sum(r.reached for r in cc.runs)}), "
                   f"(d) {cd.mean_bits:,.0f} ({sum(r.reached for r in cd.runs)})")
