@@ -63,11 +63,7 @@ class StackedProblem(Problem):
         loss = np.empty((B, self.n_workers)) if with_loss else None
         for s in self._slices(B):
             self._pass(X[s], grads[s], None if loss is None else loss[s])
-        Xw = X if X.ndim == 3 else X[:, None, :]
-        grads += self._reg_grad(Xw)
-        if loss is not None:
-            loss += self._reg_value(Xw)
-        return grads, loss
+        return self._add_regulariser(X, grads, loss)
 
     def local_losses(self, X: np.ndarray) -> np.ndarray:
         """Values (B, n) of every f_i."""

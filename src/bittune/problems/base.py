@@ -65,11 +65,7 @@ class Problem(ABC):
                 out -= self._grad_shift[blk.lo : blk.hi]
 
         self.shards.run(work)
-        Xw = X if X.ndim == 3 else X[:, None, :]
-        grads += self._reg_grad(Xw)
-        if loss is not None:
-            loss += self._reg_value(Xw)
-        return grads, loss
+        return self._add_regulariser(X, grads, loss)
 
     def local_losses(self, X: np.ndarray) -> np.ndarray:
         """Values (B, n) of every f_i."""
@@ -110,13 +106,21 @@ class Problem(ABC):
         Padded rows may get any finite weight: their data rows are zero.
         """
 
-    @abstractmethod
     def _reg_value(self, Xw: np.ndarray) -> np.ndarray:
-        """Regulariser value broadcast to (B, n)."""
+        """Regulariser value broadcast to (B, n): ridge (lam/2)||x||^2 unless a model overrides it."""
+        return 0.5 * self.regularization * (Xw * Xw).sum(axis=-1)
 
-    @abstractmethod
     def _reg_grad(self, Xw: np.ndarray) -> np.ndarray:
-        """Regulariser gradient, broadcastable to (B, n, d)."""
+        """Regulariser gradient, broadcastable to (B, n, d): ridge lam x unless overridden."""
+        return self.regularization * Xw
+
+    def _add_regulariser(self, X: np.ndarray, grads: np.ndarray, loss: np.ndarray | None):
+        """Add the regulariser's gradient (and value) to the data terms; returns (grads, loss)."""
+        Xw = X if X.ndim == 3 else X[:, None, :]
+        grads += self._reg_grad(Xw)
+        if loss is not None:
+            loss += self._reg_value(Xw)
+        return grads, loss
 
     # ---------------------------------------------------------- constants
     @abstractmethod

@@ -32,12 +32,6 @@ class LeastSquares(Problem):
     def _residual_weights(self, z, blk):
         return z
 
-    def _reg_value(self, Xw: np.ndarray) -> np.ndarray:
-        return 0.5 * self.regularization * (Xw * Xw).sum(axis=-1)
-
-    def _reg_grad(self, Xw: np.ndarray) -> np.ndarray:
-        return self.regularization * Xw
-
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
         # Hessian of f_i is A_i^T A_i/m_i + lam I: the bounds are exact (THEORY.md 3.2).
         per, pooled = self.shards.gram_top_eigs()

@@ -214,12 +214,6 @@ class MLP(StackedProblem):
         o *= blk.mask
         return o
 
-    def _reg_value(self, Xw: np.ndarray) -> np.ndarray:
-        return 0.5 * self.regularization * (Xw * Xw).sum(axis=-1)
-
-    def _reg_grad(self, Xw: np.ndarray) -> np.ndarray:
-        return self.regularization * Xw
-
     # ---------------------------------------------------------- constants
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
         """None in closed form: the curvature grows with the weights (the probe estimates it)."""

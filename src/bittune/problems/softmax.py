@@ -144,12 +144,6 @@ class Softmax(StackedProblem):
         z -= self._onehot[blk.lo]
         return z
 
-    def _reg_value(self, Xw: np.ndarray) -> np.ndarray:
-        return 0.5 * self.regularization * (Xw * Xw).sum(axis=-1)
-
-    def _reg_grad(self, Xw: np.ndarray) -> np.ndarray:
-        return self.regularization * Xw
-
     # ---------------------------------------------------------- constants
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
         """lambda_max(A_i^T A_i/m_i)/2 + lam per worker, and the same for f (module docstring)."""
