@@ -8,7 +8,16 @@ import numpy as np
 
 from ._shards import Block, Shards
 
-__all__ = ["Problem"]
+__all__ = ["Problem", "check_iterates"]
+
+
+def check_iterates(X, *, n_workers: int, dim: int) -> np.ndarray:
+    """X as float64 of shape (B, d) or (B, n, d), the two forms every oracle takes."""
+    X = np.asarray(X, dtype=np.float64)
+    n, d = n_workers, dim
+    if not (X.ndim == 2 or (X.ndim == 3 and X.shape[1] == n)) or X.shape[-1] != d:
+        raise ValueError(f"X must have shape (B, {d}) or (B, {n}, {d}), got {X.shape}")
+    return X
 
 
 class Problem(ABC):
@@ -79,11 +88,7 @@ class Problem(ABC):
         return loss + self._reg_value(X if X.ndim == 3 else X[:, None, :])
 
     def _check(self, X) -> np.ndarray:
-        X = np.asarray(X, dtype=np.float64)
-        ok = X.ndim == 2 or (X.ndim == 3 and X.shape[1] == self.n_workers)
-        if not ok or X.shape[-1] != self.dim:
-            raise ValueError(f"X must have shape (B, {self.dim}) or (B, {self.n_workers}, {self.dim}), got {X.shape}")
-        return X
+        return check_iterates(X, n_workers=self.n_workers, dim=self.dim)
 
     def full_grad(self, x: np.ndarray) -> np.ndarray:
         """Gradient of f at one point, shape (d,)."""

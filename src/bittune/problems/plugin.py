@@ -43,6 +43,8 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
+from .base import check_iterates
+
 from ..errors import InputError
 
 __all__ = ["PluginProblem", "load_plugin", "split_plugin_spec"]
@@ -184,11 +186,7 @@ class PluginProblem:
 
     # --------------------------------------------------------------- oracle
     def _check(self, X) -> np.ndarray:
-        X = np.asarray(X, dtype=np.float64)
-        n, d = self.n_workers, self.dim
-        if not (X.ndim == 2 or (X.ndim == 3 and X.shape[1] == n)) or X.shape[-1] != d:
-            raise ValueError(f"X must have shape (B, {d}) or (B, {n}, {d}), got {X.shape}")
-        return X
+        return check_iterates(X, n_workers=self.n_workers, dim=self.dim)
 
     def _call(self, i: int, w: np.ndarray, *, need_grad: bool) -> tuple[float, np.ndarray | None]:
         w = w.copy()  # the user's code may write into it

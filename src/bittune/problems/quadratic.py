@@ -13,6 +13,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from .base import check_iterates
+
 __all__ = ["Quadratic"]
 
 
@@ -76,11 +78,7 @@ class Quadratic:
         return float(self.local_losses(np.asarray(x, dtype=np.float64)[None, :])[0].mean())
 
     def _check(self, X) -> np.ndarray:
-        X = np.asarray(X, dtype=np.float64)
-        n, d = self.n_workers, self.dim
-        if not (X.ndim == 2 or (X.ndim == 3 and X.shape[1] == n)) or X.shape[-1] != d:
-            raise ValueError(f"X must have shape (B, {d}) or (B, {n}, {d}), got {X.shape}")
-        return X
+        return check_iterates(X, n_workers=self.n_workers, dim=self.dim)
 
     # ---------------------------------------------------------- constants
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
