@@ -119,8 +119,10 @@ class Log:
         self.label = label
         self.start = time.monotonic()
         self._last = -1
+        self.marks: dict[str, float] = {}  # first seconds at which a note began with a word ("select:", ...)
 
     def note(self, text: str) -> None:
+        self.marks.setdefault(text.split(" ", 1)[0], time.monotonic() - self.start)
         print(f"  [{self.label} {time.monotonic() - self.start:5.0f} s] {text}", file=sys.stderr, flush=True)
 
     def trials(self, done: int, best, pruned: int, failed: int) -> None:
@@ -350,7 +352,24 @@ def run_tune(job: Path, out: Path, *, trials: int, jobs: int, label: str) -> tup
                   progress=log)
     wall = time.perf_counter() - t0
     log.note(f"done in {wall:.0f} s, trials {result.trials}; load average {os.getloadavg()[0]:.1f}")
+    result.phases = phases(log, wall)
     return result, wall
+
+
+def phases(log: Log, wall: float) -> dict[str, float]:
+    """Seconds spent before the search (probe, theory), in the search, and after it (selection, report)."""
+    start = log.marks.get("search:", 0.0)
+    select_at = log.marks.get("select:", wall)
+    return {"prepare": start, "search": select_at - start, "select": wall - select_at}
+
+
+def speed_lines(res1, wall1: float, res2, wall2: float) -> list[str]:
+    p1, p2 = res1.phases, res2.phases
+    out = [f"wall: tune jobs=1 {wall1:.0f} s, jobs=2 {wall2:.0f} s: {wall1 / wall2:.2f}x"]
+    for key in ("prepare", "search", "select"):
+        out.append(f"  {key:8s} jobs=1 {p1[key]:6.1f} s  jobs=2 {p2[key]:6.1f} s  "
+                   f"ratio {p1[key] / max(p2[key], 1e-9):.2f}x")
+    return out
 
 
 def validations(sel) -> int:
@@ -392,6 +411,8 @@ def main() -> int:
     ap.add_argument("--confirm-seeds", type=int, default=40,
                     help="re-run (b), (c), (d) on this many more fresh seeds to show how precise the checks are "
                          "(0: skip)")
+    ap.add_argument("--speed-only", action="store_true",
+                    help="only time tune --jobs 1 against --jobs 2 (by phase), on an otherwise idle machine")
     ap.add_argument("--also-unpruned", action="store_true",
                     help="also tune with search.pruner: none (jobs=2) and show it beside (b), for comparison")
     args = ap.parse_args()
@@ -431,6 +452,12 @@ def main() -> int:
         # (b) bittune, jobs=1 then jobs=2 in a fresh run folder.
         res1, wall1 = run_tune(job_path, folder, trials=trials, jobs=1, label="tune-j1")
         res2, wall2 = run_tune(job_path, folder, trials=trials, jobs=2, label="tune-j2")
+        if args.speed_only:
+            print("\n".join(speed_lines(res1, wall1, res2, wall2)))
+            ok = check("tune --jobs 2 at least 1.6x faster than --jobs 1", ok=wall1 / wall2 >= 1.6,
+                       detail=f"{wall1 / wall2:.2f}x (load average now {os.getloadavg()[0]:.1f} on "
+                       f"{os.cpu_count()} cores)")
+            return 0 if ok else 1
         sel = res1.selection
         b = sel.winner
         if sel.seeds != fresh:
@@ -470,6 +497,7 @@ def main() -> int:
         print(f"wall: tune jobs=1 {wall1:.0f} s (trials {res1.trials}), jobs=2 {wall2:.0f} s (trials {res2.trials}, "
               f"winner {res2.selection.winner.mean_bits:,.0f} bits); grid {wall_grid:.0f} s; "
               f"plain Optuna {wall_plain:.0f} s")
+        print("\n".join(speed_lines(res1, wall1, res2, wall2)[1:]))
         print(f"(b)/(c)/(d) in theory units: step x{b.candidate.step_mult:.3g} / x{c.candidate.step_mult:.3g} / "
               f"x{d.candidate.step_size / space.theory('marina', d.candidate.compressor).step_size:.3g} "
               f"over the theory step at their own K")

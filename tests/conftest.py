@@ -8,6 +8,18 @@ import pytest
 from bittune.problems import problem_from_arrays
 
 
+class Quiet:
+    """A progress object for tune/retune that prints nothing (their ``progress`` argument)."""
+
+    total = 0
+
+    def note(self, text):
+        pass
+
+    def trials(self, *args):
+        pass
+
+
 def breast_cancer_problem(n_workers: int = 5, *, model: str = "logistic_nonconvex", reg: float = 0.1):
     """scikit-learn's bundled breast-cancer data (open dataset), standardised, split in order."""
     from sklearn.datasets import load_breast_cancer

@@ -10,16 +10,9 @@ import pytest
 
 from bittune.cli import main
 from bittune.tune import tune
+from conftest import Quiet
 
 ROOT = Path(__file__).resolve().parents[1]
-
-
-class _Quiet:
-    def note(self, text):
-        pass
-
-    def trials(self, *args):
-        pass
 
 
 @pytest.mark.slow
@@ -39,7 +32,7 @@ target: {grad_norm_sq: 1e-3, relative: true}
 budget: {max_rounds: 3000}
 search: {methods: [marina, diana], compressors: [rand_k, dither], trials: 24, seeds: 2, validation_seeds: 4}
 """)
-    result = tune(job, output=tmp_path / "c.yaml", progress=_Quiet())
+    result = tune(job, output=tmp_path / "c.yaml", progress=Quiet())
     sel = result.selection
     assert result.exit_code == 0 and sel.winner.all_reached
     assert sel.winner.mean_bits < sel.baseline.mean_bits  # beats theory on the same fresh seeds

@@ -293,7 +293,7 @@ def config_documents(draw):
 
 
 def _check_job(job: Job, folder: Path) -> None:
-    assert job.workers.count >= 1 and job.budget.max_rounds >= 1 and job.target.grad_norm_sq > 0
+    assert job.workers.count >= 1 and job.budget.max_rounds >= 1 and (job.target.grad_norm_sq or job.target.loss_gap) > 0
     assert job.data.path.is_file() and job.data.format in job_mod.DATA_FORMATS
     lo, hi = job.search.step_range
     assert 0 < lo <= hi

@@ -26,6 +26,7 @@ from bittune.report import (GRID_POINTS, CAUTION, best_per_method, curve_band, i
                             step_response, worker_smoothness, write_report)
 from bittune.search import open_storage
 from bittune.tune import tune
+from conftest import Quiet
 
 ROOT = Path(__file__).resolve().parents[1]
 STEP = FloatDistribution(0.5, 4096.0, log=True)
@@ -203,14 +204,6 @@ def test_importance_ranks_the_parameter_that_matters_and_admits_too_few_trials()
 
 
 # ------------------------------------------------------------ real run folder
-class _Quiet:
-    def note(self, text):
-        pass
-
-    def trials(self, *args):
-        pass
-
-
 @pytest.fixture(scope="module")
 def run(tmp_path_factory):
     folder = tmp_path_factory.mktemp("report")
@@ -230,7 +223,7 @@ search:
   seeds: 2
   validation_seeds: 3
 """)
-    tune(folder / "job.yaml", output=folder / "c.yaml", progress=_Quiet())
+    tune(folder / "job.yaml", output=folder / "c.yaml", progress=Quiet())
     return folder
 
 

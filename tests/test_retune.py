@@ -15,19 +15,10 @@ from bittune.cli import main
 from bittune.retune import decide, retune
 from bittune.search import open_storage
 from bittune.tune import tune
+from conftest import Quiet
 
 ROOT = Path(__file__).resolve().parents[1]
 MAKE = ROOT / "examples/frost/make_data.py"
-
-
-class _Quiet:
-    total = 0
-
-    def note(self, text):
-        pass
-
-    def trials(self, *args):
-        pass
 
 
 def _data(folder: Path, name: str, *args: str) -> Path:
@@ -57,7 +48,7 @@ def night0(tmp_path_factory):
     folder = tmp_path_factory.mktemp("nights")
     data = _data(folder, "night0.svm")
     job = _job(folder, data)
-    tune(job, output=folder / "prod.yaml", progress=_Quiet())
+    tune(job, output=folder / "prod.yaml", progress=Quiet())
     return folder, job
 
 
@@ -65,7 +56,7 @@ def night0(tmp_path_factory):
 def test_no_drift_keeps_the_previous_config_with_fewer_trials(night0, tmp_path):
     folder, job = night0
     result = retune(job, previous=folder / "prod.yaml", output=tmp_path / "night1.yaml", history=tmp_path / "h",
-                    progress=_Quiet())
+                    progress=Quiet())
     assert result.exit_code == 5 and result.decision == "kept"
     section = result.config["retune"]
     ran = section["trials"]["complete"] + section["trials"]["pruned"]
@@ -82,7 +73,7 @@ def test_no_drift_keeps_the_previous_config_with_fewer_trials(night0, tmp_path):
 @pytest.mark.slow
 def test_warm_start_trials_come_first_inside_tonights_ranges(night0, tmp_path):
     folder, job = night0
-    retune(job, previous=folder / "prod.yaml", output=tmp_path / "n.yaml", progress=_Quiet())
+    retune(job, previous=folder / "prod.yaml", output=tmp_path / "n.yaml", progress=Quiet())
     trials = sorted(_trials_of(tmp_path / "n.run"), key=lambda t: t.number)
     warm = [t for t in trials if t.user_attrs.get("warm_start")]
     assert warm and [t.number for t in warm] == list(range(len(warm)))
@@ -129,7 +120,7 @@ def test_changed_dimension_falls_back_to_full_tuning(night0, tmp_path):
     Xd = X.toarray()
     np.savez(wider, X=np.hstack([Xd, Xd[:, :2] * 0.5]), y=y)
     job = _job(tmp_path, wider, trials=12)
-    result = retune(job, previous=folder / "prod.yaml", output=tmp_path / "n.yaml", progress=_Quiet())
+    result = retune(job, previous=folder / "prod.yaml", output=tmp_path / "n.yaml", progress=Quiet())
     assert result.config["retune"]["new_problem"] is True
     assert result.decision == "replaced" and result.exit_code == 0
     assert result.config["problem"]["dimension"] == 40
@@ -142,7 +133,7 @@ def test_output_equal_to_previous_is_left_alone_when_kept(night0, tmp_path):
     prod = tmp_path / "prod.yaml"
     prod.write_text((folder / "prod.yaml").read_text())
     before = prod.read_bytes()
-    result = retune(job, previous=prod, output=prod, trials=10, progress=_Quiet())
+    result = retune(job, previous=prod, output=prod, trials=10, progress=Quiet())
     assert result.decision == "kept" and result.written is None
     assert prod.read_bytes() == before
 
@@ -152,7 +143,7 @@ def test_history_gains_one_entry_per_run_and_never_loses_one(night0, tmp_path, c
     hist = tmp_path / "hist"
     for k in range(2):
         retune(job, previous=folder / "prod.yaml", output=tmp_path / f"n{k}.yaml", trials=10, history=hist,
-               progress=_Quiet())
+               progress=Quiet())
         assert len(list(hist.glob("*.json"))) == k + 1 and len(list(hist.glob("*.yaml"))) == k + 1
     assert main(["history", str(hist), "--json"]) == 0
     rows = json.loads(capsys.readouterr().out)["nights"]

@@ -265,7 +265,7 @@ def test_table_pairs_methods_with_fitting_compressors():
     assert any(s.startswith("rand_k") for s in by_method["ef21"])
     doc = json.loads(json.dumps([r.to_dict() for r in rows]))
     assert set(doc[0]) == {"method", "compressor", "step_size", "sync_probability", "predicted_rounds",
-                           "predicted_bits_per_worker", "shift_rate", "clients", "source"}
+                           "predicted_bits_per_worker", "shift_rate", "clients", "minibatch", "source"}
     # A given list is filtered per method: GD takes identity only, MARINA unbiased ones, EF21 any.
     rows = theory_table(c, target=EPS, compressors=["identity", "top_k:20"], methods=("gd", "marina", "ef21"))
     assert [(r.method, r.compressor) for r in rows] == [

@@ -20,6 +20,7 @@ from bittune.cli import main
 from bittune.errors import InputError
 from bittune.search import open_storage
 from bittune.tune import study_name, tune
+from conftest import Quiet
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -85,7 +86,7 @@ def test_tuned_config_beats_theory_and_replays(case, frost, tmp_path, capsys):
     else:
         job = _job(tmp_path, _cancer(tmp_path), workers=5, reg=0.1, target=1e-5)
     out = tmp_path / "config.yaml"
-    result = tune(job, output=out, progress=_Quiet())
+    result = tune(job, output=out, progress=Quiet())
     assert result.exit_code == 0
     sel = result.selection
     assert sel.winner.all_reached
@@ -106,14 +107,6 @@ def test_tuned_config_beats_theory_and_replays(case, frost, tmp_path, capsys):
     assert cfg["provenance"]["job_sha256"] and cfg["provenance"]["data_sha256"]
 
 
-class _Quiet:
-    def note(self, text):
-        pass
-
-    def trials(self, *args):
-        pass
-
-
 def _trials(run_dir: Path, job: Path):
     from bittune.job import load_job
 
@@ -124,7 +117,7 @@ def _trials(run_dir: Path, job: Path):
 @pytest.mark.slow
 def test_two_processes_share_one_budget(frost, tmp_path):
     job = _job(tmp_path, str(frost / "stations.svm"), workers=12, trials=30)
-    result = tune(job, output=tmp_path / "c.yaml", jobs=2, progress=_Quiet())
+    result = tune(job, output=tmp_path / "c.yaml", jobs=2, progress=Quiet())
     trials = _trials(tmp_path / "c.run", job)
     finished = [t for t in trials if t.state in (TrialState.COMPLETE, TrialState.PRUNED)]
     assert len(finished) == 30  # the global budget, not 30 per process
@@ -138,7 +131,7 @@ def test_two_processes_share_one_budget(frost, tmp_path):
 def test_seed_points_are_clipped_and_run_first(frost, tmp_path):
     extra = "  step_range: [2, 8]\n  sync_range: [2, 3]\n"
     job = _job(tmp_path, str(frost / "stations.svm"), trials=18, methods=("marina", "ef21"), extra=extra)
-    tune(job, output=tmp_path / "c.yaml", progress=_Quiet())
+    tune(job, output=tmp_path / "c.yaml", progress=Quiet())
     trials = sorted(_trials(tmp_path / "c.run", job), key=lambda t: t.number)
     seeds = [t for t in trials if t.user_attrs.get("seed_point")]
     assert seeds and [t.number for t in seeds] == list(range(len(seeds)))  # enqueued seeds ran first
@@ -161,7 +154,7 @@ def test_existing_study_with_another_direction_is_refused(frost, tmp_path):
     optuna.create_study(study_name=study_name(load_job(job)), storage=open_storage(str(run_dir / "study.journal")),
                         direction="maximize")
     with pytest.raises(InputError, match="maximises"):
-        tune(job, output=tmp_path / "c.yaml", progress=_Quiet())
+        tune(job, output=tmp_path / "c.yaml", progress=Quiet())
     assert not (tmp_path / "c.yaml").exists()
 
 
@@ -175,7 +168,7 @@ def test_a_failed_write_leaves_the_previous_config(frost, tmp_path, monkeypatch)
 
     monkeypatch.setattr(os, "replace", boom)
     with pytest.raises(OSError):
-        tune(job, output=out, progress=_Quiet())
+        tune(job, output=out, progress=Quiet())
     assert out.read_text() == "previous: config\n"
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
 
@@ -231,7 +224,7 @@ target: {{grad_norm_sq: 1e-4, relative: true}}
 budget: {{max_rounds: 4000}}
 search: {{methods: [gd, diana], compressors: [dither], trials: 30, seeds: 2}}
 """)
-        result = tune(job, output=tmp_path / f"{name}-config.yaml", progress=_Quiet())
+        result = tune(job, output=tmp_path / f"{name}-config.yaml", progress=Quiet())
         cfg = result.config
         assert cfg["expected"]["objective"] == "seconds" and cfg["expected"]["mean_seconds"] > 0
         # Seconds = rounds (compute + latency) + bits / bandwidth (our network model, cost.py).
@@ -256,7 +249,7 @@ def test_a_numerical_fault_fails_one_trial_not_the_study(frost, tmp_path, monkey
 
     monkeypatch.setattr(search, "simulate", faulty)
     job = _job(tmp_path, str(frost / "stations.svm"), trials=10, methods=("marina",))
-    result = tune(job, output=tmp_path / "c.yaml", progress=_Quiet())
+    result = tune(job, output=tmp_path / "c.yaml", progress=Quiet())
     trials = _trials(tmp_path / "c.run", job)
     failed = [t for t in trials if t.state == TrialState.FAIL]
     assert len(failed) == 1 and "overflow" in failed[0].user_attrs["failed_reason"]

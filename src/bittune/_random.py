@@ -32,6 +32,7 @@ STREAM = {
     "compress_aux": 3,
     "start": 4,
     "clients": 5,
+    "minibatch": 6,
 }
 
 

@@ -31,13 +31,14 @@ def _load_job(args: argparse.Namespace):
 
 def _cmd_replay(args: argparse.Namespace) -> int:
     from .config import load_config
-    from .replay import replay, summarize
+    from .replay import replay, stored_reference, summarize
     from .workspace import open_job
 
     cfg = load_config(args.config)
-    ws = open_job(_load_job(args))
+    job = _load_job(args)
+    ws = open_job(job, reference=stored_reference(cfg, job))  # f_ref of a loss gap: the config's if same job
     runs = replay(ws, cfg, seeds=range(args.seed, args.seed + args.seeds), source=str(args.config))
-    doc = summarize(runs)
+    doc = summarize(runs, loss_ref=ws.loss_ref)
     doc["config"] = str(args.config)
     doc["problem"] = ws.summary()
     if args.json:
@@ -46,7 +47,7 @@ def _cmd_replay(args: argparse.Namespace) -> int:
         comp = cfg.compressor.get("name")
         print(f"{cfg.method} + {comp} {_params(cfg.compressor)} at step {cfg.step_size:g} on "
               f"{ws.problem.n_workers} workers, d = {ws.problem.dim}, "
-              f"target ||grad f||^2 <= {ws.target:.3g}")
+              f"target {ws.target_text()}")
         print(f"{'seed':>6} {'status':<9} {'rounds':>8} {'uplink bits/worker':>20}")
         for r in runs:
             print(f"{r.seed:>6} {r.status:<9} {r.rounds:>8} {r.uplink_bits:>20,.0f}")
@@ -142,30 +143,51 @@ def _cmd_theory(args: argparse.Namespace) -> int:
     ws = open_job(_load_job(args))
     d = ws.problem.dim
     methods = tuple(args.method) if args.method else METHOD_NAMES
+    if "vr_marina" in methods and not getattr(ws.problem, "has_samples", False):
+        if args.method:
+            raise InputError(f"--method vr_marina: the model {ws.job.model} has no per-sample gradients")
+        methods = tuple(m for m in methods if m != "vr_marina")
     compressors = None
     if args.compressor:
         compressors = [make_compressor(spec, d, key="--compressor", n_workers=ws.problem.n_workers).label()
                        for spec in args.compressor]
-    constants, report = probe_workspace(ws)
+    constants, report = probe_workspace(ws, sample_smoothness="vr_marina" in methods)
     grads, _ = ws.problem.local_grads(report.points)
-    rows = theory_table(constants, target=ws.target, methods=methods, compressors=compressors,
+    # A loss-gap target has no published non-convex rate: steps at the surrogate 2 L delta, no
+    # predictions; the PL rules (assume.pl_mu) predict the gap itself (theory._pl_rounds).
+    rows = theory_table(constants, target=ws.theory_target(constants.L), methods=methods, compressors=compressors,
                         contraction_vectors=grads)
     if not rows:
         raise InputError("--compressor: no compressor given fits the methods asked for "
                          "(gd takes identity; dcgd, diana, marina take unbiased compressors)")
     if args.json:
-        _emit_json({"job": str(ws.job.path), "problem": ws.summary(), "target_grad_norm_sq": ws.target,
-                    "rows": [r.to_dict() for r in rows]})
+        docs = [r.to_dict() for r in rows]
+        if ws.reference is not None:
+            docs = [r if "linear_rate" in r else {**r, "predicted_rounds": None, "predicted_bits_per_worker": None}
+                    for r in docs]
+        _emit_json({"job": str(ws.job.path), "problem": ws.summary(), "target": ws.target_doc(),
+                    "target_grad_norm_sq": ws.target if ws.reference is None else None, "rows": docs})
         return EXIT["ok"]
-    print(f"theory settings for {ws.problem.n_workers} workers, d = {d}, target ||grad f||^2 <= {ws.target:.3g} "
+    if ws.reference is not None:
+        print(f"a loss-gap target has no published non-convex rate: predicted rounds and bits only under "
+              f"assume.pl_mu; {ws.reference['note']}")
+    if constants.pl_mu is not None:
+        print(f"under PL with mu = {constants.pl_mu:g} (assume.pl_mu): PL rules where published, rate = "
+              f"1 - step mu per round")
+    print(f"theory settings for {ws.problem.n_workers} workers, d = {d}, target {ws.target_text()} "
           f"(L = {constants.L:.4g}, L_qm = {constants.L_qm:.4g}, Delta0 = {constants.delta0:.4g})")
-    print(f"{'method':<7} {'compressor':<11} {'step':>10} {'sync p':>8} {'shift':>7} {'rounds':>16} "
-          f"{'bits/worker':>14}  source")
+    pl = constants.pl_mu is not None
+    print(f"{'method':<9} {'compressor':<16} {'step':>10} {'sync p':>8} {'shift':>7} {'rounds':>16} "
+          f"{'bits/worker':>14}" + (f" {'rate':>10}" if pl else "") + "  source")
     for r in rows:
         p = f"{r.sync_probability:>8.3g}" if r.sync_probability is not None else f"{'':>8}"
         a = f"{r.shift_rate:>7.3g}" if r.shift_rate is not None else f"{'':>7}"
-        print(f"{r.method:<7} {r.compressor:<11} {r.step_size:>10.4g} {p} {a} {r.predicted_rounds:>16,} "
-              f"{r.predicted_bits_per_worker:>14.4g}  {r.source}")
+        if ws.reference is None or r.rate is not None:
+            k, bits = f"{r.predicted_rounds:>16,}", f"{r.predicted_bits_per_worker:>14.4g}"
+        else:
+            k, bits = f"{'n/a':>16}", f"{'n/a':>14}"
+        rate = "" if not pl else (f" {r.rate:>10.6g}" if r.rate is not None else f" {'-':>10}")
+        print(f"{r.method:<9} {r.compressor:<16} {r.step_size:>10.4g} {p} {a} {k} {bits}{rate}  {r.source}")
     return EXIT["ok"]
 
 

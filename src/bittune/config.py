@@ -9,8 +9,8 @@ sync_probability: 0.05      # marina only
 shift_rate: 0.1             # diana only (optional)
 problem: {dimension: 123, workers: 12}
 ```
-Other top-level sections (``expected``, ``constants``, ``provenance``,
-``retune``, ...) are free-form and kept verbatim; a key that looks like a typo
+Other top-level sections (``target``, ``expected``, ``constants``,
+``provenance``, ``retune``, ...) are free-form and kept verbatim; a key that looks like a typo
 of a known one is an error. All problems are reported together, key paths named.
 """
 
@@ -34,7 +34,7 @@ __all__ = [
 ]
 
 FORMAT_VERSION = 1
-METHODS = ("gd", "dcgd", "diana", "marina", "pp_marina", "ef21")
+METHODS = ("gd", "dcgd", "diana", "marina", "pp_marina", "vr_marina", "ef21")
 #: Compressor name -> its parameters.
 COMPRESSORS: dict[str, dict[str, Param]] = {
     "identity": {},
@@ -53,16 +53,18 @@ TOP = {
     "sync_probability": _PROBABILITY,
     "shift_rate": _PROBABILITY,
     "clients": Param("int", low=1),
+    "minibatch": Param("int", low=1),
 }
 #: Method-specific keys: key -> {method: required?}. Any other method rejects the key.
 METHOD_KEYS = {
-    "sync_probability": {"marina": True, "pp_marina": True},
+    "sync_probability": {"marina": True, "pp_marina": True, "vr_marina": True},
     "shift_rate": {"diana": False},  # None: the method's default
     "clients": {"pp_marina": False},  # None: all n workers (r = n); needs TOP["clients"] to be read
+    "minibatch": {"vr_marina": True},  # rows per worker per compressed round
 }
 PROBLEM = {"dimension": Param("int", low=1), "workers": Param("int", low=1)}
 #: Free-form sections written by later stages (listed so typos of them are caught).
-FREE_SECTIONS = ("expected", "constants", "provenance", "retune")
+FREE_SECTIONS = ("target", "expected", "constants", "provenance", "retune")
 _KNOWN = ["bittune_config", *TOP, "compressor", "problem"]
 
 
@@ -77,6 +79,7 @@ class Config:
     workers: int | None
     extra: dict = field(default_factory=dict)  # other top-level sections, kept verbatim
     clients: int | None = None  # pp_marina: clients per compressed round (None: all)
+    minibatch: int | None = None  # vr_marina: rows per worker per compressed round
 
 
 def parse_config(mapping: Any, *, source: str) -> Config:
@@ -119,7 +122,7 @@ def parse_config(mapping: Any, *, source: str) -> Config:
         raise InputError(problems, source=source)
     return Config(method=method, compressor=compressor, step_size=top["step_size"],
                   sync_probability=top["sync_probability"], shift_rate=top["shift_rate"],
-                  clients=top["clients"],
+                  clients=top["clients"], minibatch=top["minibatch"],
                   dimension=sizes["dimension"], workers=sizes["workers"], extra=extra)
 
 
@@ -159,7 +162,7 @@ def config_to_dict(cfg: Config) -> dict:
     """Plain mapping in the documented key order; unset optional keys left out."""
     out: dict[str, Any] = {"bittune_config": FORMAT_VERSION, "method": cfg.method,
                            "compressor": dict(cfg.compressor), "step_size": cfg.step_size}
-    for key in ("sync_probability", "shift_rate", "clients"):
+    for key in ("sync_probability", "shift_rate", "clients", "minibatch"):
         if getattr(cfg, key) is not None:
             out[key] = getattr(cfg, key)
     sizes = {k: getattr(cfg, k) for k in ("dimension", "workers") if getattr(cfg, k) is not None}

@@ -4,7 +4,8 @@ Seconds per round = compute time of a local gradient + latency
 + uplink bits / uplink bandwidth + downlink bits / downlink bandwidth
 (a synchronous round waits for the message; the per-worker mean message size
 is used, exact for fixed-size compressors). Summed over the rounds a
-trajectory ran.
+trajectory ran. A minibatch method (VR-MARINA) pays compute per sampled
+gradient: its compute time is ``gradient_passes`` full local gradients.
 """
 
 from __future__ import annotations
@@ -25,7 +26,7 @@ class NetworkModel:
 
     def seconds(self, run) -> float:
         """Simulated wall-clock seconds of a finished trajectory."""
-        return (run.rounds * (self.compute_seconds + self.latency)
+        return (run.rounds * self.latency + run.gradient_passes * self.compute_seconds
                 + run.uplink_bits / self.uplink_bandwidth + run.downlink_bits / self.downlink_bandwidth)
 
     def seconds_curve(self, rounds: np.ndarray, uplink_bits: np.ndarray) -> np.ndarray:

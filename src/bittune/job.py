@@ -24,12 +24,12 @@ from bittune._yaml import (
 from bittune.errors import InputError
 
 __all__ = [
-    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "NetworkSpec", "Job",
+    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "NetworkSpec", "AssumeSpec", "Job",
     "load_job", "parse_job", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
 ]
 
 MODELS = ("logistic_nonconvex", "least_squares", "softmax", "mlp", "plugin")
-METHOD_NAMES = ("gd", "dcgd", "diana", "marina", "pp_marina", "ef21")
+METHOD_NAMES = ("gd", "dcgd", "diana", "marina", "pp_marina", "vr_marina", "ef21")
 COMPRESSOR_NAMES = ("identity", "rand_k", "top_k", "dither", "natural", "natural_dither", "perm_k")
 SPLITS = ("iid", "by_label", "dirichlet", "column")
 DATA_FORMATS = ("svmlight", "csv", "npz")
@@ -59,8 +59,16 @@ class WorkersSpec:
 
 @dataclass(frozen=True)
 class TargetSpec:
-    grad_norm_sq: float
+    """Exactly one kind: ``grad_norm_sq`` (||grad f(x)||^2 <= eps, times ||grad f(x0)||^2 when
+    ``relative``) or ``loss_gap`` (f(x) - f_ref <= delta, always absolute; ``relative`` is False)."""
+
+    grad_norm_sq: float | None
     relative: bool
+    loss_gap: float | None = None
+
+    @property
+    def kind(self) -> str:
+        return "loss_gap" if self.loss_gap is not None else "grad_norm_sq"
 
 
 @dataclass(frozen=True)
@@ -75,6 +83,13 @@ class NetworkSpec:
     uplink_bandwidth: float
     downlink_bandwidth: float
     compute_seconds: float | None
+
+
+@dataclass(frozen=True)
+class AssumeSpec:
+    """What the user states about f that the probe cannot measure."""
+
+    pl_mu: float | None  # Polyak-Lojasiewicz constant: (1/2)||grad f||^2 >= mu (f - f_inf)
 
 
 @dataclass(frozen=True)
@@ -136,6 +151,7 @@ class Job:
     raw: dict = field(repr=False)
     digest: str  # sha256 hex of the job file bytes
     allow_code: bool = False  # --allow-code: a plugin model may be imported
+    assume: AssumeSpec = AssumeSpec(pl_mu=None)
 
 
 #: Top-level keys that hold a single value ("" section).
@@ -162,9 +178,10 @@ SECTIONS: dict[str, dict[str, Param]] = {
         "seed": Param("int", low=0, default=0),
         "dirichlet_alpha": Param("real", low=0, closed="right", default=1.0),
     },
-    "target": {
-        "grad_norm_sq": Param("real", low=0, closed="right", default=REQUIRED),
-        "relative": Param("bool", default=True),
+    "target": {  # exactly one of grad_norm_sq and loss_gap (checked by _check_target)
+        "grad_norm_sq": Param("real", low=0, closed="right"),
+        "relative": Param("bool", default=True),  # grad_norm_sq only
+        "loss_gap": Param("real", low=0, closed="right"),  # f(x) - f_ref, f_ref found by L-BFGS-B
     },
     "budget": {
         "max_rounds": Param("int", low=1, default=REQUIRED),
@@ -181,6 +198,9 @@ SECTIONS: dict[str, dict[str, Param]] = {
         "downlink_bandwidth": Param("real", low=0, closed="right", default=1e7),
         "compute_seconds": Param("real", low=0),  # default: measured by the probe
     },
+    "assume": {  # optional statements about f: the PL theory rules (THEORY.md 2.7, 2.9) use pl_mu
+        "pl_mu": Param("real", low=0, closed="right"),
+    },
     "probe": {
         # Upper bounds keep a typo from hanging the probe (our choice, no source).
         "runs": Param("int", low=1, high=100, default=3),
@@ -193,7 +213,9 @@ SECTIONS: dict[str, dict[str, Param]] = {
         "lower_bound": Param("real"),  # a known lower bound of f; default: the model's
     },
     "search": {
-        "methods": Param("choices", options=METHOD_NAMES, default=list(METHOD_NAMES)),
+        # vr_marina is opt-in: with bits as the objective it only adds gradient noise to
+        # MARINA; it pays when compute counts (objective: seconds) and the probe's calL costs time.
+        "methods": Param("choices", options=METHOD_NAMES, default=[m for m in METHOD_NAMES if m != "vr_marina"]),
         "compressors": Param("choices", options=COMPRESSOR_NAMES,
                              default=["rand_k", "top_k", "dither", "natural"]),
         "trials": Param("int", low=1, default=60),
@@ -273,6 +295,7 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
     given = {f"{s}.{key_text(k)}" for s in SECTIONS if isinstance(mapping.get(s), dict)
              for k, v in mapping[s].items() if v is not None}
     data, start = _check_data(values, base_dir, problems), _check_start(values, base_dir, problems)
+    _check_target(mapping.get("target"), values, problems)
     if problems:
         raise InputError(problems, source=source)
     if values[""].get("model") == "plugin" and not values[""].get("plugin"):
@@ -294,7 +317,7 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
         search=SearchSpec(**values["search"]), objective=top["objective"],
         model_options=_model_options(top, values, base_dir),
         network=NetworkSpec(**values["network"]),
-        raw=deepcopy(mapping), digest=digest,
+        raw=deepcopy(mapping), digest=digest, assume=AssumeSpec(**values["assume"]),
     )
 
 
@@ -361,6 +384,30 @@ def _check_data(values: dict, base_dir: Path, problems: list[str]) -> DataSpec |
                             "hold (use csv with data.group_column, or npz with an array 'groups')")
     return DataSpec(path=path, format=fmt, label_column=v.get("label_column"),
                     group_column=v.get("group_column"))
+
+
+def _check_target(raw: Any, values: dict, problems: list[str]) -> None:
+    """Exactly one of grad_norm_sq and loss_gap; relative only with grad_norm_sq.
+
+    A loss-gap target is absolute (f(x) - f_ref <= delta), so ``relative`` given
+    with it is an error rather than silently ignored; ``values["target"]["relative"]``
+    becomes False for it.
+    """
+    if raw is not None and not isinstance(raw, dict):
+        return  # already reported: "target: must be a mapping"
+    given = {k for k, v in (raw or {}).items() if v is not None}
+    if "grad_norm_sq" in given and "loss_gap" in given:
+        problems.append("target: give exactly one of grad_norm_sq (a target on ||grad f||^2) and loss_gap "
+                        "(a target on f(x) - f_ref), not both")
+    elif not given & {"grad_norm_sq", "loss_gap"}:
+        problems.append("target.grad_norm_sq: required")
+        problems.append("target: give grad_norm_sq (stop at ||grad f(x)||^2 <= eps) or loss_gap "
+                        "(stop at f(x) - f_ref <= delta)")
+    elif "loss_gap" in given:
+        if "relative" in given:
+            problems.append("target.relative: only used with target.grad_norm_sq; a loss_gap target is "
+                            "absolute (f(x) - f_ref <= delta), remove relative")
+        values["target"]["relative"] = False
 
 
 def _check_start(values: dict, base_dir: Path, problems: list[str]) -> StartSpec:

@@ -98,6 +98,7 @@ class _Counted:
     def __init__(self, problem):
         self.problem = problem
         self.n_workers, self.dim = int(problem.n_workers), int(problem.dim)
+        self.worker_sizes = getattr(problem, "worker_sizes", None)
         self.calls = self.rows = 0
 
     def _chunks(self, X: np.ndarray) -> list[np.ndarray]:
@@ -228,6 +229,53 @@ def _power(oracle, pts: np.ndarray, *, iters: int, rng) -> dict:
     return {key: value.max(axis=0) for key, value in best.items()}
 
 
+def _sample_smoothness(problem, pts: np.ndarray, *, iters: int, draws: int, rng) -> np.ndarray:
+    """Average smoothness calL_i (THEORY.md 2.5) per worker, (n,): the largest over ``pts`` of
+    sqrt(lambda_max(M_i)), M_i = (1/m_i) sum_j H_ij^2, H_ij the Hessian of row j's f_ij.
+
+    Power iteration on M_i without per-row Hessians: for Rademacher signs s_j,
+    A_s = sum_j s_j H_ij has E_s[A_s^2] = sum_j H_ij^2 (the cross terms have
+    mean zero; Hutchinson's trick, from memory), so v <- mean_s A_s (A_s v) / m_i
+    is power iteration on M_i in expectation, and mean_s ||A_s v||^2 / m_i is an
+    unbiased estimate of v^T M_i v. A_s v is a central difference of the
+    minibatch oracle with the signs as row weights (``weighted_grads``). The
+    estimate of the last iteration counts (the max over noisy iterations would
+    be biased upwards); ``draws`` sign vectors per iteration set its noise
+    (relative standard error about sqrt(2/draws) per point).
+    """
+    P, d = pts.shape
+    n, m_max = problem.n_workers, problem.shards.m_max
+    sizes = np.asarray(problem.worker_sizes, dtype=np.float64)
+    mask = np.arange(m_max)[None, :] < sizes[:, None]
+    h = _H * (1.0 + np.linalg.norm(pts, axis=1))
+
+    chunk = max(1, _MAX_ELEMENTS // (4 * P * n * m_max))  # sign draws per oracle call (memory)
+
+    def apply(S: np.ndarray, dirs: np.ndarray) -> np.ndarray:
+        """sum_j S[r, p, i, j] H_ij(x_p) dirs[r, p, i]: (R, P, n, d), ``chunk`` draws per oracle call."""
+        out = np.empty_like(dirs)
+        for a in range(0, dirs.shape[0], chunk):
+            unit, norm = _unit(dirs[a : a + chunk], axis=3)
+            shift = h[None, :, None, None] * unit
+            X = pts[None, :, None, :] + np.stack([shift, -shift])  # (2, r, P, n, d)
+            Sa = S[a : a + chunk]
+            W = np.concatenate([Sa, Sa]).reshape(-1, n, m_max)
+            G = problem.weighted_grads(X.reshape(-1, n, d), W).reshape(2, *unit.shape)
+            out[a : a + chunk] = (G[0] - G[1]) / (2.0 * h[None, :, None, None]) * norm
+        return out
+
+    v = _unit(rng.standard_normal((draws, P, n, d)), 3)[0]
+    v[:] = v[0]  # one direction per point and worker, shared by the sign draws
+    est = np.zeros((P, n))
+    for _ in range(iters):
+        S = np.where(rng.random((draws, P, n, m_max)) < 0.5, -1.0, 1.0) * mask
+        Av = apply(S, v)
+        est = (np.sum(Av * Av, axis=3) / sizes).mean(axis=0)  # v^T M_i v, v unit
+        Mv = apply(S, Av).mean(axis=0) / sizes[None, :, None]
+        v[:] = _unit(Mv, 2)[0][None]
+    return np.sqrt(np.nan_to_num(est)).max(axis=0)
+
+
 def _secants(pts: np.ndarray, G: np.ndarray) -> dict:
     """Largest secant ratios over all pairs of points: lower bounds on L_i, L, L_+, L_pm."""
     P, n, _ = G.shape
@@ -262,6 +310,7 @@ def estimate_constants(
     lower_bound: float | None = None,
     gradient_tolerance: float = 1e-5,
     strict: bool = True,
+    sample_smoothness: bool = False,
 ) -> tuple[Constants, ProbeReport]:
     """Estimate the smoothness constants of THEORY.md 3.1 near the path from ``x0``.
 
@@ -285,6 +334,9 @@ def estimate_constants(
     lambda_max(mean H_i(x)^2 - Hbar(x)^2) at single points, while the global
     L_pm is defined on pairs of points. ``safety`` > 1 buys margin. The
     gradient check runs at the probe points, before any Hessian work; with
+    ``sample_smoothness`` (VR-MARINA needs it) the average smoothness calL is
+    estimated too (:func:`_sample_smoothness`), for models with per-sample
+    gradients; with
     ``strict`` a failure raises :class:`GradientCheckError` at once (a wrong
     gradient makes every later number meaningless), else it is only reported.
 
@@ -354,6 +406,16 @@ def estimate_constants(
     raised += sum(int(secant[k] > local[k]) for k in ("L", "L_plus", "L_pm"))
     est = {k: np.maximum(local[k], secant[k]) * safety for k in local}
 
+    sample_L = sizes = None
+    if sample_smoothness and getattr(problem, "has_samples", False):
+        # Three probe points spread over the list (x0 first) keep the cost at 2 x 12 oracle
+        # calls of 2 x 16 x 3 points; 16 sign draws: about 35% standard error per estimate
+        # (our choice, no source). calL_i >= L_i always (Jensen), so L_i is the floor.
+        ends = pts[np.unique(np.linspace(0, len(pts) - 1, 3).astype(int))]
+        raw = _sample_smoothness(problem, ends, iters=12, draws=16, rng=rng)
+        per = np.maximum(raw * safety, est["L_workers"])
+        sample_L = float(np.sqrt(np.mean(per * per)))
+        sizes = np.asarray(problem.worker_sizes, dtype=np.float64)
     f0 = float(losses[0].mean())
     if f0 < lower:
         raise ValueError(f"lower_bound must be <= f(x0) = {f0:.6g}, got {lower:.6g}")
@@ -365,6 +427,8 @@ def estimate_constants(
         local_grad_sq0=float(np.mean(np.sum(g0 * g0, axis=1))),
         heterogeneity0=float(np.mean(np.sum((g0 - gbar) ** 2, axis=1))), safety=float(safety),
         bound_L=None if bounds is None else bounds[1], bound_L_workers=None if bounds is None else bounds[0],
+        L_sample=sample_L, samples_per_worker=None if sizes is None else float(sizes.mean()),
+        min_samples_per_worker=None if sizes is None else int(sizes.min()),
     )
     report = ProbeReport(points=pts, oracle_calls=oracle.calls, oracle_points=oracle.rows,
                          seconds=time.perf_counter() - start, step_size=float(step), step_source=source,
@@ -372,18 +436,31 @@ def estimate_constants(
     return constants, report
 
 
-def probe_workspace(ws, *, strict: bool = True) -> tuple[Constants, ProbeReport]:
+def probe_workspace(ws, *, strict: bool = True,
+                    sample_smoothness: bool | None = None) -> tuple[Constants, ProbeReport]:
     """Run the probe with the job's ``probe`` settings on a workspace's problem.
 
-    An impossible lower bound is an input error naming ``probe.lower_bound``.
+    An impossible lower bound is an input error naming ``probe.lower_bound``;
+    ``assume.pl_mu`` above the measured L likewise. ``sample_smoothness``
+    (default: whether the job searches vr_marina) asks for calL.
     """
     spec = ws.job.probe
     try:
-        return estimate_constants(
+        constants, report = estimate_constants(
             ws.problem, x0=ws.x0, rng=np.random.default_rng(spec.seed), runs=spec.runs,
             run_rounds=spec.run_rounds, points_per_run=spec.points_per_run, power_iters=spec.power_iters,
             safety=spec.safety, lower_bound=spec.lower_bound, gradient_tolerance=spec.gradient_tolerance,
-            strict=strict)
+            strict=strict,
+            sample_smoothness=("vr_marina" in ws.job.search.methods) if sample_smoothness is None else sample_smoothness)
     except ValueError as exc:  # every ValueError here is about the job's input
         key = "probe.lower_bound" if "lower_bound" in str(exc) else "start"
         raise InputError(f"{key}: {exc}", source=str(ws.job.path)) from None
+    mu = ws.job.assume.pl_mu
+    if mu is not None:
+        # mu <= L always: the PL inequality and L-smoothness give 2 mu (f - f_inf) <= ||grad f||^2
+        # <= 2 L (f - f_inf) (Karimi, Nutini, Schmidt 2016, from memory).
+        if mu > constants.L:
+            raise InputError(f"assume.pl_mu: must be <= L = {constants.L:.4g} (the PL constant never exceeds the "
+                             f"smoothness constant), got {mu:g}", source=str(ws.job.path))
+        constants.pl_mu = float(mu)
+    return constants, report

@@ -35,7 +35,7 @@ from ._yaml import atomic_write_text
 from .errors import InputError
 
 __all__ = ["write_report", "report_data", "curve_band", "search_history", "step_response",
-           "worker_smoothness", "best_per_method", "importance", "GRID_POINTS", "CAUTION"]
+           "worker_smoothness", "best_per_method", "importance", "target_info", "GRID_POINTS", "CAUTION"]
 
 #: Points of the common log-spaced bits grid of the convergence band.
 GRID_POINTS = 200
@@ -44,10 +44,25 @@ CAUTION = ("A simulated gain is a forecast, not a measurement: confirm the chose
 
 
 # ------------------------------------------------------------------ plot data
-def curve_band(summary: dict, which: str, *, points: int = GRID_POINTS) -> dict:
-    """||grad f||^2 against uplink bits per worker over the validation seeds of ``which``.
+def target_info(summary: dict) -> dict:
+    """The run's target: ``kind`` (grad_norm_sq or loss_gap), absolute ``threshold``, the
+    summary's curve key, an axis ``label``, and f_ref with its note for a loss gap.
+    Summaries written before loss-gap targets existed hold only ``target_grad_norm_sq``."""
+    t = summary.get("target")
+    if isinstance(t, dict) and t.get("kind") == "loss_gap":
+        return {"kind": "loss_gap", "threshold": float(t["absolute"]), "curve": "loss_gap",
+                "label": "f − f_ref", "f_ref": t.get("f_ref"), "note": t.get("note") or ""}
+    threshold = t["absolute"] if isinstance(t, dict) else summary["target_grad_norm_sq"]
+    return {"kind": "grad_norm_sq", "threshold": float(threshold), "curve": "grad_norm_sq",
+            "label": "‖∇f‖²", "f_ref": None, "note": ""}
 
-    Each seed's curve (points with bits > 0 and a finite positive ||grad f||^2)
+
+def curve_band(summary: dict, which: str, *, points: int = GRID_POINTS) -> dict:
+    """The target's metric against uplink bits per worker over the validation seeds of ``which``.
+
+    The metric is ||grad f||^2, or f - f_ref for a loss-gap target (``metric``
+    names it; the per-seed ends are ``end_<metric>``).
+    Each seed's curve (points with bits > 0 and a finite positive metric)
     is interpolated linearly in (log10 bits, log10 ||grad f||^2) onto a grid
     log-spaced from the smallest first bit count to the largest last one. A seed
     counts only inside its own bits range (no extrapolation). ``mean`` is the
@@ -56,16 +71,18 @@ def curve_band(summary: dict, which: str, *, points: int = GRID_POINTS) -> dict:
     covering the point; ``end_*`` are each seed's last point (where it stopped).
     """
     curves = summary["curves"][which]
-    out = {"which": which, "seeds": len(curves), "target": float(summary["target_grad_norm_sq"]),
-           "status": [c.get("status") for c in curves], "end_bits": [], "end_grad_norm_sq": []}
+    t = target_info(summary)
+    end = f"end_{t['curve']}"
+    out = {"which": which, "seeds": len(curves), "target": t["threshold"], "metric": t["kind"],
+           "status": [c.get("status") for c in curves], "end_bits": [], end: []}
     kept = []
     for c in curves:
-        b, g = np.asarray(c["uplink_bits"], float), np.asarray(c["grad_norm_sq"], float)
+        b, g = np.asarray(c["uplink_bits"], float), np.asarray(c[t["curve"]], float)
         keep = (b > 0) & np.isfinite(g) & (g > 0)
         if keep.any():
             kept.append((b[keep], g[keep]))
             out["end_bits"].append(float(b[keep][-1]))
-            out["end_grad_norm_sq"].append(float(g[keep][-1]))
+            out[end].append(float(g[keep][-1]))
     if not kept:
         return {**out, "bits": [], "mean": [], "lo": [], "hi": [], "count": []}
     bits = np.geomspace(min(b[0] for b, _ in kept), max(b[-1] for b, _ in kept), points)  # exact ends
@@ -222,7 +239,7 @@ def _scatter(ax, x, y, mask, *, label: str, hollow: bool = False, color="tab:blu
         ax.scatter(np.asarray(x)[mask], np.asarray(y)[mask], s=22, label=label, **fill, **kw)
 
 
-def _draw_convergence(bands: dict, labels: dict) -> bytes:
+def _draw_convergence(bands: dict, labels: dict, ylabel: str = "‖∇f‖²") -> bytes:
     fig, ax = _figure(7.5, 4.8)
     for which, color in (("baseline", "tab:gray"), ("winner", "tab:blue")):
         d = bands[which]
@@ -234,11 +251,11 @@ def _draw_convergence(bands: dict, labels: dict) -> bytes:
                         f"{d['seeds']} seeds")
         ax.plot(x, lo, x, hi, color=color, lw=0.6, alpha=0.6)  # edges: visible where one seed is left
         ax.plot(d["bits"], d["mean"], color=color, lw=2, label=f"{labels[which]}: geometric mean")
-        ax.scatter(d["end_bits"], d["end_grad_norm_sq"], color=color, s=14, marker="|", label=f"{labels[which]}: "
-                   "end of each seed")
+        ax.scatter(d["end_bits"], d[f"end_{d['metric']}"], color=color, s=14, marker="|",
+                   label=f"{labels[which]}: end of each seed")
     target = bands["winner"]["target"]
     ax.axhline(target, color="tab:red", ls="--", lw=1, label=f"target {target:.3g}")
-    ax.set(xscale="log", yscale="log", xlabel="uplink bits per worker", ylabel="‖∇f‖²",
+    ax.set(xscale="log", yscale="log", xlabel="uplink bits per worker", ylabel=ylabel,
            title="Convergence on fresh seeds")
     return _png(fig, ax, ncols=2)
 
@@ -345,11 +362,13 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
     """The report as blocks: ("h", text), ("p", text), ("note", text), ("list", items),
     ("img", figure name, caption), ("table", header, rows); rendered to Markdown and HTML."""
     sel, prob, w, b = s["selection"], s["problem"], s["selection"]["winner"], s["selection"]["baseline"]
-    sizes = prob["worker_sizes"]
+    sizes, t = prob["worker_sizes"], target_info(s)
+    goal = f"{t['label']} ≤ {t['threshold']:.3g}" + (f" with f_ref = {t['f_ref']:.6g} ({t['note']})"
+                                                     if t["kind"] == "loss_gap" else "")
     doc: list = [("p", f"Job {s['job']}; config {s['config']}; study {s['study']} in {s['storage']}."),
                  ("p", f"Model {prob['model']}, {prob['samples']:,} samples, d = {prob['dimension']}, "
                        f"{prob['workers']} workers (sizes {min(sizes):,}–{max(sizes):,}); "
-                       f"target ‖∇f‖² ≤ {s['target_grad_norm_sq']:.3g}.")]
+                       f"target {goal}.")]
     extras = "".join(f", {name} {_fmt(w[k])}" for k, name in (("sync_probability", "sync probability"),
                                                                ("shift_rate", "shift rate")) if w[k] is not None)
     doc += [("h", "Result"), ("p", f"Chosen: {w['method']} + {w['compressor']}, step {_fmt(w['step_size'])}{extras}."),
@@ -366,8 +385,9 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
                   + ("; it stopped short of the target on some seeds, so its bits are a lower bound)." if missed
                      else ").")),
             ("note", CAUTION),
-            ("img", "convergence", "‖∇f‖² against uplink bits per worker, chosen config and theory baseline: line = "
-                                   "geometric mean over the fresh seeds, band = min–max, ticks = each seed's end.")]
+            ("img", "convergence", f"{t['label']} against uplink bits per worker, chosen config and theory "
+                                   "baseline: line = geometric mean over the fresh seeds, band = min–max, "
+                                   "ticks = each seed's end.")]
     h, m = data["history"], data["methods"]
     doc += [("h", "Search"),
             ("p", f"{s['search']['trials']} trials over {', '.join(s['search']['methods'])} on seeds "
@@ -419,7 +439,9 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
         rows.append([*base, _fmt(b["step_size"]), _fmt(b["sync_probability"]), _fmt(b["shift_rate"]), "—", "—",
                      "★ (finer density grid)"])
     doc += [("h", "Theory settings"),
-            ("p", "Published step-size rules at a few densities of each allowed compressor (★ = the baseline)."),
+            ("p", "Published step-size rules at a few densities of each allowed compressor (★ = the baseline)."
+             + (" The rules predict rounds to a target on ‖∇f‖² only: for a loss-gap target no prediction "
+                "is given." if t["kind"] == "loss_gap" else "")),
             ("table", ["method", "compressor", "step", "sync p", "shift rate", "predicted rounds",
                        "predicted bits/worker", "baseline"], rows),
             ("list", sorted({f"{r['method']}: {r['source']}" for r in s["theory"]}))]
@@ -540,7 +562,7 @@ def write_report(run_dir, *, out_dir=None, drift: list[dict] | None = None,
     sel = summary["selection"]
     labels = {k: f"{'chosen' if k == 'winner' else 'theory'} {sel[k]['method']} + {sel[k]['compressor']}"
               for k in ("winner", "baseline")}
-    images = {"convergence": _draw_convergence(data["convergence"], labels),
+    images = {"convergence": _draw_convergence(data["convergence"], labels, target_info(summary)["label"]),
               "history": _draw_history(data["history"]), "step": _draw_step(data["step"]),
               "smoothness": _draw_smoothness(data["smoothness"])}
     if len(summary["search"]["methods"]) > 1 and data["methods"]["method"]:

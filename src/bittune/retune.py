@@ -28,7 +28,7 @@ import numpy as np
 from .config import Config, config_to_dict, load_config, write_config
 from .report import write_report
 from .errors import EXIT, InputError
-from .search import Candidate, open_storage
+from .search import SYNCED, Candidate, open_storage
 from .select import Evaluation, evaluate, select
 from .tune import _config_doc, _plain, _Progress, prepare, respace, run_search, trial_counts, write_summary
 
@@ -100,7 +100,8 @@ def decide(new: Evaluation, old: Evaluation, *, margin: float = MARGIN, level: f
 
 def _candidate(cfg: Config) -> Candidate:
     return Candidate(cfg.method, dict(cfg.compressor), float(cfg.step_size), cfg.sync_probability, cfg.shift_rate,
-                     clients=cfg.clients if cfg.method == "pp_marina" else None)
+                     clients=cfg.clients if cfg.method == "pp_marina" else None,
+                     minibatch=cfg.minibatch if cfg.method == "vr_marina" else None)
 
 
 def _warm_params(space, cands: list[Candidate]) -> list[dict]:
@@ -113,18 +114,23 @@ def _warm_params(space, cands: list[Candidate]) -> list[dict]:
         clients = None
         if c.method == "pp_marina":
             clients = int(min(max(c.clients or space.constants.n_workers, 1), space.constants.n_workers))
-        t = space.theory(c.method, c.compressor, clients)
+        minibatch = None
+        if c.method == "vr_marina":
+            minibatch = int(min(max(c.minibatch or 1, 1), space.max_minibatch))
+        t = space.theory(c.method, c.compressor, clients, minibatch)
         params = {"method": c.method, f"{c.method}.compressor": c.compressor["name"],
                   f"{c.method}.step_mult": _clip(c.step_size / t.step_size, s.step_range)}
         dp = space._density_param(c.compressor["name"])
         if dp is not None:
             pname, lo, hi = dp
             params[pname] = int(min(max(c.compressor[pname.split(".")[1]], lo), hi))
-        if c.method in ("marina", "pp_marina"):
+        if c.method in SYNCED:
             params[f"{c.method}.sync_mult"] = _clip(
                 (c.sync_probability or t.sync_probability) / t.sync_probability, s.sync_range)
         if clients is not None:
             params["pp_marina.clients"] = clients
+        if minibatch is not None:
+            params["vr_marina.minibatch"] = minibatch
         if c.method == "diana":
             params["diana.shift_mult"] = _clip((c.shift_rate or t.shift_rate) / t.shift_rate, s.shift_range)
         key = tuple(sorted(params.items()))
@@ -157,19 +163,20 @@ def _previous_best(cfg: Config, count: int = 3) -> list[Candidate]:
     for t in trials[:count]:
         c = t.user_attrs["candidate"]
         out.append(Candidate(c["method"], dict(c["compressor"]), float(c["step_size"]),
-                             c.get("sync_probability"), c.get("shift_rate")))
+                             c.get("sync_probability"), c.get("shift_rate"), clients=c.get("clients"),
+                             minibatch=c.get("minibatch")))
     return out
 
 
 def _narrowed(spec, cand: Candidate, space) -> dict:
     """Search overrides around the previous winner (small drift)."""
-    t = space.theory(cand.method, cand.compressor, cand.clients)
+    t = space.theory(cand.method, cand.compressor, cand.clients, cand.minibatch)
     m = cand.step_size / t.step_size
     lo, hi = spec.step_range
     out = {"methods": [cand.method],
            "compressors": [cand.compressor["name"]] if cand.method != "gd" else list(spec.compressors),
            "step_range": (max(lo, min(m / 4, hi)), min(hi, max(m * 4, lo)))}
-    if cand.method in ("marina", "pp_marina") and cand.sync_probability:
+    if cand.method in SYNCED and cand.sync_probability:
         s = cand.sync_probability / t.sync_probability
         out["sync_range"] = (max(spec.sync_range[0], min(s / 3, spec.sync_range[1])),
                              min(spec.sync_range[1], max(s * 3, spec.sync_range[0])))
@@ -230,6 +237,10 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
         "new": selection.winner.summary(), "previous": None if old_eval is None else old_eval.summary(),
         "previous_config": str(previous.absolute()), "time_utc": _now(),
     }
+    if ws.reference is not None:  # a loss gap: f_ref is found again on tonight's data (the previous is shown)
+        old = prev.extra["constants"].get("f_ref") if isinstance(prev.extra["constants"], dict) else None
+        section["f_ref"] = {"previous": old.get("value") if isinstance(old, dict) else None,
+                            "current": ws.loss_ref, "note": ws.reference["note"]}
     if decision == "replaced":
         doc = _config_doc(prep, selection, study.study_name, storage_url)
     else:

@@ -44,6 +44,8 @@ __all__ = [
 COUNTED = (TrialState.COMPLETE, TrialState.PRUNED, TrialState.RUNNING)
 #: Step multipliers enqueued above the theory point (DESIGN.md: theory is timid).
 SEED_LADDER = (1.0, 2.0, 4.0, 16.0, 64.0, 256.0)
+#: Methods with MARINA's sync probability p (searched as a multiplier of the theory p).
+SYNCED = ("marina", "pp_marina", "vr_marina")
 #: Minimum stall window in rounds; MARINA's grows like 1/p (DESIGN.md measurements).
 STALL_ROUNDS = 100
 #: Cost between pruning checkpoints grows by this factor (common practice, no source).
@@ -63,12 +65,15 @@ class Candidate:
     sync_mult: float | None = None
     shift_mult: float | None = None
     clients: int | None = None  # PP-MARINA's clients per compressed round
+    minibatch: int | None = None  # VR-MARINA's rows per worker per compressed round
 
     def params(self) -> dict:
         """Method parameters as :func:`bittune.simulate.simulate` takes them."""
         out = {}
         if self.clients is not None:
             out["clients"] = self.clients
+        if self.minibatch is not None:
+            out["minibatch"] = self.minibatch
         if self.sync_probability is not None:
             out["sync_probability"] = self.sync_probability
         if self.shift_rate is not None:
@@ -84,11 +89,12 @@ class Candidate:
         """Identity for de-duplication: same method, compressor, and values to 4 digits."""
         r = lambda v: None if v is None else float(f"{v:.4g}")  # noqa: E731
         return (self.method, self.label, r(self.step_size), r(self.sync_probability), r(self.shift_rate),
-                self.clients)
+                self.clients, self.minibatch)
 
     def with_step(self, step: float) -> "Candidate":
         return Candidate(self.method, self.compressor, step, self.sync_probability, self.shift_rate,
-                         self.step_mult * step / self.step_size, self.sync_mult, self.shift_mult, self.clients)
+                         self.step_mult * step / self.step_size, self.sync_mult, self.shift_mult, self.clients,
+                         self.minibatch)
 
     def to_config(self) -> dict:
         out = {"method": self.method, "compressor": dict(self.compressor), "step_size": float(self.step_size)}
@@ -98,6 +104,8 @@ class Candidate:
             out["shift_rate"] = float(self.shift_rate)
         if self.clients is not None:
             out["clients"] = int(self.clients)
+        if self.minibatch is not None:
+            out["minibatch"] = int(self.minibatch)
         return out
 
 
@@ -113,6 +121,11 @@ class Space:
         self._theory: dict[tuple, object] = {}
         self.methods = list(spec.methods)
         self.compressors = {m: self._fitting(m) for m in self.methods}
+        if "vr_marina" in self.methods and constants.L_sample is None:
+            from .errors import InputError
+
+            raise InputError("search.methods: vr_marina needs a model with per-sample gradients (the "
+                             "plugin models give whole-worker losses only) and the probe's calL; drop it")
         empty = [m for m, c in self.compressors.items() if not c]
         if empty:
             from .errors import InputError
@@ -120,6 +133,11 @@ class Space:
             raise InputError(f"search.compressors: no compressor in {spec.compressors} fits "
                              f"{', '.join(empty)} (dcgd, diana, pp_marina need an independent unbiased one: "
                              f"rand_k, dither, natural, natural_dither, identity; marina also takes perm_k)")
+
+    @property
+    def max_minibatch(self) -> int:
+        """VR-MARINA's largest minibatch b': the smallest worker's row count."""
+        return int(self.constants.min_samples_per_worker or 1)
 
     # ------------------------------------------------------------ structure
     def _fitting(self, method: str) -> list[str]:
@@ -142,31 +160,34 @@ class Space:
             return f"{name}.levels", int(lo), int(min(hi, 8) if name == "natural_dither" else hi)
         return None
 
-    def theory(self, method: str, compressor: dict, clients: int | None = None):
-        """The theory point of ``method`` with ``compressor`` (and PP-MARINA's clients), cached."""
-        key = (method, tuple(sorted(compressor.items())), clients)
+    def theory(self, method: str, compressor: dict, clients: int | None = None, minibatch: int | None = None):
+        """The theory point of ``method`` with ``compressor`` (and PP-MARINA's clients or VR-MARINA's
+        minibatch), cached."""
+        key = (method, tuple(sorted(compressor.items())), clients, minibatch)
         if key not in self._theory:
             comp = make_compressor(compressor, self.dim, n_workers=self.constants.n_workers)
             alpha = None
             if method == "ef21" and not comp.unbiased and not comp.correlated and self._vectors is not None:
                 alpha = measured_contraction(comp, self._vectors)
             self._theory[key] = theory_point(method, comp, self.constants, target=self.target,
-                                             contraction=alpha, clients=clients)
+                                             contraction=alpha, clients=clients, minibatch=minibatch)
         return self._theory[key]
 
     def candidate(self, method: str, compressor: dict, *, step_mult: float = 1.0,
                   sync_mult: float | None = None, shift_mult: float | None = None,
-                  clients: int | None = None) -> Candidate:
-        t = self.theory(method, compressor, clients)
+                  clients: int | None = None, minibatch: int | None = None) -> Candidate:
+        minibatch = minibatch if method == "vr_marina" else None
+        t = self.theory(method, compressor, clients, minibatch)
         sync = shift = None
-        if method in ("marina", "pp_marina"):
+        if method in SYNCED:
             sync_mult = 1.0 if sync_mult is None else sync_mult
             sync = min(1.0, sync_mult * t.sync_probability)
         if method == "diana":
             shift_mult = 1.0 if shift_mult is None else shift_mult
             shift = min(1.0, shift_mult * t.shift_rate)
         return Candidate(method, dict(compressor), step_mult * t.step_size, sync, shift,
-                         step_mult, sync_mult, shift_mult, clients if method == "pp_marina" else None)
+                         step_mult, sync_mult, shift_mult, t.clients if method == "pp_marina" else None,
+                         t.minibatch)
 
     # --------------------------------------------------------------- trials
     def suggest(self, trial: optuna.Trial) -> Candidate:
@@ -180,15 +201,17 @@ class Space:
             pname, lo, hi = dp
             compressor[pname.split(".")[1]] = trial.suggest_int(pname, lo, hi, log=True)
         step_mult = trial.suggest_float(f"{method}.step_mult", *s.step_range, log=True)
-        sync_mult = shift_mult = clients = None
-        if method in ("marina", "pp_marina"):
+        sync_mult = shift_mult = clients = minibatch = None
+        if method in SYNCED:
             sync_mult = trial.suggest_float(f"{method}.sync_mult", *s.sync_range, log=True)
         if method == "pp_marina":
             clients = trial.suggest_int("pp_marina.clients", 1, self.constants.n_workers, log=True)
+        if method == "vr_marina":
+            minibatch = trial.suggest_int("vr_marina.minibatch", 1, self.max_minibatch, log=True)
         if method == "diana":
             shift_mult = trial.suggest_float("diana.shift_mult", *s.shift_range, log=True)
         return self.candidate(method, compressor, step_mult=step_mult, sync_mult=sync_mult,
-                              shift_mult=shift_mult, clients=clients)
+                              shift_mult=shift_mult, clients=clients, minibatch=minibatch)
 
     def density_options(self, name: str, points: int) -> list[dict]:
         """Settings of compressor ``name`` on a log grid of ``points`` densities (one if it has none)."""
@@ -224,10 +247,12 @@ class Space:
             if dp is not None:
                 pname, lo, hi = dp
                 base[pname] = int(min(max(comp[pname.split(".")[1]], lo), hi))
-            if method in ("marina", "pp_marina"):
+            if method in SYNCED:
                 base[f"{method}.sync_mult"] = _clip(1.0, s.sync_range)
             if method == "pp_marina":
                 base["pp_marina.clients"] = int(self.constants.n_workers)
+            if method == "vr_marina":
+                base["vr_marina.minibatch"] = int(self.theory(method, comp).minibatch)
             if method == "diana":
                 base["diana.shift_mult"] = _clip(1.0, s.shift_range)
             for m in SEED_LADDER:
@@ -249,7 +274,8 @@ class Space:
         return self.candidate(method, compressor, step_mult=params[f"{method}.step_mult"],
                               sync_mult=params.get(f"{method}.sync_mult"),
                               shift_mult=params.get("diana.shift_mult") if method == "diana" else None,
-                              clients=params.get("pp_marina.clients") if method == "pp_marina" else None)
+                              clients=params.get("pp_marina.clients") if method == "pp_marina" else None,
+                              minibatch=params.get("vr_marina.minibatch"))
 
 
 def _clip(value: float, bounds: tuple) -> float:
@@ -259,7 +285,7 @@ def _clip(value: float, bounds: tuple) -> float:
 # -------------------------------------------------------------------- objective
 def stall_window(method: str, sync_probability=None):
     """Rounds without progress before a trajectory counts as stalled: 100, MARINA max(100, 10/p)."""
-    if method in ("marina", "pp_marina") and sync_probability is not None:
+    if method in SYNCED and sync_probability is not None:
         return np.maximum(STALL_ROUNDS, 10.0 / np.asarray(sync_probability, dtype=np.float64))
     return STALL_ROUNDS
 
@@ -274,9 +300,11 @@ def score(runs: list[Trajectory], *, target: float, cap: float | None, cost=None
 
     The cost is uplink bits per worker unless ``cost`` (run -> float, e.g.
     simulated seconds) is given. Missed (budget, bit cap, stall, stop):
-    max(cost, cap) x (2 + log10(best ||grad f||^2 / target)), at least twice
-    the cap. Diverged: twice that. (Our own rule: it keeps values finite and
-    ordered, so the sampler still learns from failures; no source.)
+    max(cost, cap) x (2 + log10(best metric / target)), at least twice
+    the cap, the metric being the run's stopping metric (``Trajectory.progress``:
+    ||grad f||^2, or f - f_ref for a loss-gap target). Diverged: twice that.
+    (Our own rule: it keeps values finite and ordered, so the sampler still
+    learns from failures; no source.)
     """
     cost = cost or (lambda r: float(r.uplink_bits))
     values = []
@@ -284,7 +312,7 @@ def score(runs: list[Trajectory], *, target: float, cap: float | None, cost=None
         if r.reached:
             values.append(cost(r))
             continue
-        finite = r.grad_norm_sq[np.isfinite(r.grad_norm_sq)]
+        finite = r.progress[np.isfinite(r.progress)]
         best = float(finite.min()) if finite.size else math.inf
         distance = math.log10(best / target) if math.isfinite(best) and best > 0 else 12.0
         base = max(cost(r), cap or 0.0, 1e-9)
@@ -306,6 +334,7 @@ class Objective:
     seeds: list[int]
     worker: int = 0
     network: object = None  # a NetworkModel for the objective "seconds"; None: bits
+    loss_ref: float | None = None  # f_ref of a loss-gap target (then ``target`` is the gap); None: ||grad f||^2
     _best: float = field(default=math.inf, repr=False)
 
     def __call__(self, trial: optuna.Trial) -> float:
@@ -330,7 +359,7 @@ class Objective:
         runs = simulate(self.problem, method=cand.method, compressor=comp, step_size=cand.step_size,
                         seeds=self.seeds, target=self.target, max_rounds=self.max_rounds, x0=self.x0,
                         params=cand.params(), max_bits_per_worker=bits_cap, stall_window=window,
-                        monitor=monitor)
+                        monitor=monitor, loss_ref=self.loss_ref)
         value, per_seed = score(runs, target=self.target, cap=cap, cost=cost_function(self.network))
         if self.network is not None:
             trial.set_user_attr("seconds", [float(self.network.seconds(r)) for r in runs])
@@ -359,8 +388,10 @@ class Objective:
 
 
 class _PruneMonitor:
-    """Reports mean log10(best ||grad f||^2 / target) over the seeds at geometric cost checkpoints.
+    """Reports mean log10(best metric / target) over the seeds at geometric cost checkpoints.
 
+    The metric is the engine's stopping metric: ||grad f||^2, or f - f_ref for a
+    loss-gap target (a gap at or below 0 counts as 1e-12 x target).
     Trials are compared at equal cost (bits, or simulated seconds), the unit the
     search minimises, so a pruner never judges cheap-per-round settings by rounds.
     """
@@ -372,12 +403,12 @@ class _PruneMonitor:
         self.step = 0
         self.pruned = False
 
-    def __call__(self, k, index, bits, gn) -> bool:
-        self.best[index] = np.minimum(self.best[index], np.where(np.isfinite(gn), gn, np.inf))
+    def __call__(self, k, index, bits, metric) -> bool:
+        self.best[index] = np.minimum(self.best[index], np.where(np.isfinite(metric), metric, np.inf))
         if bits.size == 0 or self.cost_at(k, bits.mean()) < self.next_cost:
             return False
         with np.errstate(divide="ignore"):
-            progress = np.log10(np.maximum(self.best, 1e-300) / self.target)
+            progress = np.log10(np.maximum(self.best, 1e-12 * self.target) / self.target)
         value = float(np.mean(np.minimum(progress, 1e6)))
         self.trial.report(value, self.step)
         self.step += 1

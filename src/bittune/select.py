@@ -21,7 +21,8 @@ from optuna.trial import TrialState
 
 from .compressors import make_compressor
 from .search import Candidate, Space, stall_window
-from .simulate import Trajectory, simulate
+from .parallel import simulate_many
+from .simulate import Trajectory
 
 __all__ = ["Evaluation", "Selection", "validation_seeds", "evaluate", "select"]
 
@@ -70,6 +71,7 @@ class Evaluation:
             "sync_probability": self.candidate.sync_probability,
             "shift_rate": self.candidate.shift_rate,
             "clients": self.candidate.clients,
+            "minibatch": self.candidate.minibatch,
             "reached": int(sum(r.reached for r in self.runs)),
             "seeds": len(self.runs),
             "status": [r.status for r in self.runs],
@@ -78,6 +80,7 @@ class Evaluation:
             "mean_rounds": float(k.mean()),
             "std_rounds": float(k.std(ddof=1)) if len(k) > 1 else 0.0,
             "bits_per_worker": [float(v) for v in b],
+            "mean_gradient_evals_per_worker": float(np.mean([r.gradient_evals for r in self.runs])),
             "rounds": [int(v) for v in k],
             **({} if self.network is None else {
                 "mean_seconds": self.mean_cost, "seconds": [float(v) for v in self.costs],
@@ -107,28 +110,36 @@ def validation_seeds(spec) -> list[int]:
     return [1_000_000 + spec.seed * 1000 + j for j in range(spec.validation_seeds)]
 
 
-def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None) -> list[Evaluation]:
-    """Run each candidate on ``seeds``; candidates of one method and compressor share a batch."""
+def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, *,
+             jobs: int | None = None) -> list[Evaluation]:
+    """Run each candidate on ``seeds``; candidates of one method and compressor share a batch.
+
+    The batches run in ``jobs`` processes (default: the job's ``search.jobs``;
+    :func:`bittune.parallel.simulate_many`).
+    """
     groups: dict[tuple, list[int]] = {}
     for i, c in enumerate(candidates):
         groups.setdefault((c.method, c.label), []).append(i)
     out: list[Evaluation | None] = [None] * len(candidates)
     job = ws.job
+    S = len(seeds)
+    batches = []
     for idx in groups.values():
         first = candidates[idx[0]]
-        S = len(seeds)
         steps = np.repeat([candidates[i].step_size for i in idx], S)
         params = {}
-        for key in ("sync_probability", "shift_rate", "clients"):
+        for key in ("sync_probability", "shift_rate", "clients", "minibatch"):
             vals = [getattr(candidates[i], key) for i in idx]
             if vals[0] is not None:
                 params[key] = np.repeat(vals, S)
         comp = make_compressor(first.compressor, ws.problem.dim, n_workers=ws.problem.n_workers)
-        runs = simulate(ws.problem, method=first.method, compressor=comp,
-                        step_size=steps, seeds=np.tile(seeds, len(idx)), target=ws.target,
-                        max_rounds=job.budget.max_rounds, x0=ws.x0, params=params,
-                        max_bits_per_worker=job.budget.max_bits_per_worker,
-                        stall_window=stall_window(first.method, params.get("sync_probability")))
+        batches.append(dict(method=first.method, compressor=comp, step_size=steps, seeds=np.tile(seeds, len(idx)),
+                            target=ws.target, max_rounds=job.budget.max_rounds, x0=ws.x0, params=params,
+                            max_bits_per_worker=job.budget.max_bits_per_worker,
+                            stall_window=stall_window(first.method, params.get("sync_probability")),
+                            loss_ref=ws.loss_ref))
+    jobs = job.search.jobs if jobs is None else jobs
+    for idx, runs in zip(groups.values(), simulate_many(ws.problem, batches, jobs=jobs)):
         for j, i in enumerate(idx):
             out[i] = Evaluation(candidates[i], runs[j * S:(j + 1) * S], network)
     return out
@@ -158,14 +169,28 @@ def select(ws, space: Space, study, network=None) -> Selection:
         from .errors import BittuneError
 
         raise BittuneError("no trial completed: nothing to validate (see the trials' failed_reason)")
-    evals = evaluate(ws, cands, seeds, network)
+    # The theory baseline runs beside the finalists when they share one method (it is often the
+    # slowest batch: a timid step runs to the round budget), else beside the back-off steps.
+    methods = {c.method for c in cands}
+    early = None
+    if len(methods) == 1:
+        (method,) = methods
+        early = space.candidate(method, space.theory_density(method))
+    first = evaluate(ws, cands + ([early] if early else []), seeds, network)
+    evals, baseline = (first[:-1], first[-1]) if early else (first, None)
     ok = [e for e in evals if e.all_reached]
     winner = min(ok, key=lambda e: e.mean_cost) if ok else min(
         evals, key=lambda e: (-sum(r.reached for r in e.runs), e.mean_cost))
-    backoff: list[Evaluation] = []
+    steps = []
     if winner.all_reached and spec.backoff_steps > 0:
         steps = [winner.candidate.step_size / spec.backoff_factor ** j for j in range(1, spec.backoff_steps + 1)]
-        backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds, network)
+    late = [] if baseline else [space.candidate(winner.candidate.method,
+                                                space.theory_density(winner.candidate.method))]
+    more = evaluate(ws, [winner.candidate.with_step(s) for s in steps] + late, seeds, network) if steps or late else []
+    backoff = more[: len(steps)]
+    if late:
+        baseline = more[-1]
+    if backoff:
         limit = winner.mean_cost * (1.0 + spec.backoff_tolerance)
         chosen = winner
         for e in backoff:
@@ -173,6 +198,4 @@ def select(ws, space: Space, study, network=None) -> Selection:
                 break
             chosen = e
         winner = chosen
-    base_comp = space.theory_density(winner.candidate.method)
-    baseline = evaluate(ws, [space.candidate(winner.candidate.method, base_comp)], seeds, network)[0]
     return Selection(winner=winner, baseline=baseline, finalists=evals, backoff=backoff, seeds=seeds)

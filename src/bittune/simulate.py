@@ -24,7 +24,7 @@ STATUS = {
     "budget": "spent the round budget before the target",
     "bits_cap": "spent the bit budget before the target",
     "diverged": "diverged (non-finite values, or ||grad f||^2 far above its start)",
-    "stalled": "stalled (no new best ||grad f||^2 for a window of rounds)",
+    "stalled": "stalled (no new best ||grad f||^2, or f - f_ref for a loss-gap target, for a window of rounds)",
     "stopped": "stopped by the caller (e.g. a pruned trial)",
 }
 
@@ -42,11 +42,20 @@ class Trajectory:
     rounds: int
     uplink_bits: float  # cumulative uplink bits per worker (mean over workers)
     downlink_bits: float  # cumulative broadcast bits per worker
+    gradient_evals: float  # per-sample gradients each worker computed (mean over workers)
+    gradient_passes: float  # the same in full local gradients (mean of evals_i / m_i); = rounds but for minibatches
     grad_norm_sq: np.ndarray  # ||grad f(x^k)||^2
     uplink_curve: np.ndarray  # uplink bits per worker spent to reach x^k
     loss_rounds: np.ndarray  # rounds at which f was recorded
     loss: np.ndarray  # f(x^k) at loss_rounds
     x: np.ndarray = field(repr=False)  # the last iterate
+    #: The stopping metric at x^k: f(x^k) - f_ref for a loss-gap target, else ||grad f(x^k)||^2
+    #: (None given: the same array as grad_norm_sq).
+    progress: np.ndarray | None = field(default=None, repr=False)
+
+    def __post_init__(self) -> None:
+        if self.progress is None:
+            self.progress = self.grad_norm_sq
 
     @property
     def reached(self) -> bool:
@@ -81,6 +90,7 @@ def simulate(
     loss_every: int = 0,
     stall_window=None,
     monitor=None,
+    loss_ref: float | None = None,
 ) -> list[Trajectory]:
     """Simulate ``len(seeds)`` trajectories of ``method`` at once.
 
@@ -89,11 +99,16 @@ def simulate(
     absolute (see :func:`absolute_target`). The loss f is recorded at x^0,
     every ``loss_every`` rounds (0: never in between) and at the last iterate.
 
+    The stopping metric is ||grad f(x^k)||^2, or with ``loss_ref`` (f_ref of a
+    loss-gap target) f(x^k) - loss_ref: then f is computed every round (it
+    shares the oracle's pass over the data) and recorded at every round, and
+    ``target`` is the gap. Divergence is always judged on ||grad f||^2.
+
     ``stall_window`` (scalar or per trajectory; None: off) ends a trajectory
-    that has not improved its best ||grad f||^2 by 1% for that many rounds.
-    ``monitor(k, index, uplink_bits, grad_norm_sq)`` is called after every
+    that has not improved its best metric by 1% for that many rounds.
+    ``monitor(k, index, uplink_bits, metric)`` is called after every
     round with the still-running trajectories (their indices into the batch,
-    cumulative bits, current ||grad f||^2); if it returns True the batch
+    cumulative bits, current metric); if it returns True the batch
     stops and those trajectories end as ``stopped``.
     """
     seeds = np.atleast_1d(np.asarray(seeds, dtype=np.int64))
@@ -101,35 +116,44 @@ def simulate(
     keys_all = trajectory_keys(seeds)
     step_all = np.broadcast_to(np.asarray(step_size, dtype=np.float64), (B,)).copy()
     meth = make_method(method, compressor=compressor, n_workers=n, dim=d, batch=B, **(params or {}))
+    meth.bind(problem)
     x0 = np.zeros(d) if x0 is None else np.asarray(x0, dtype=np.float64)
     X = np.broadcast_to(x0, (B, d)).copy()
 
     grads, loss0 = problem.local_grads(X, with_loss=True)
     gn = _norm_sq(grads)
+    track_loss = loss_ref is not None
+    f_hist = [loss0.mean(axis=1)] if track_loss else None  # f(x^k) every round (loss-gap target)
+    metric = f_hist[0] - loss_ref if track_loss else gn  # what the target and the stall rule see
     limit = divergence_factor * gn
     active = np.arange(B)
     keys, step = keys_all, step_all
     up = np.zeros(B)
     down = np.zeros(B)
+    evals = np.zeros(B)
+    passes = np.zeros(B)
+    # Models without rows (a quadratic test problem) count one evaluation per local gradient.
+    sizes = getattr(problem, "worker_sizes", None)
+    sizes = np.ones(n) if sizes is None else np.asarray(sizes, dtype=np.float64)
     gn_hist = [gn.copy()]
     up_hist = [up.copy()]
     loss_log = [(0, active.copy(), loss0.mean(axis=1))]
     out: dict[int, tuple[str, int]] = {}
     final_x = np.empty((B, d))
     window = None if stall_window is None else np.broadcast_to(np.asarray(stall_window, dtype=np.float64), (B,))
-    best = gn.copy()
+    best = metric.copy()
     last_gain = np.zeros(B)
     stop = False
 
     for k in range(max_rounds + 1):
         status = np.full(active.shape, "", dtype=object)
         status[~(np.isfinite(gn) & (gn <= limit[active]))] = "diverged"
-        status[gn <= target] = "reached"
+        status[metric <= target] = "reached"
         if max_bits_per_worker is not None:
             status[(status == "") & (up[active] >= max_bits_per_worker)] = "bits_cap"
         if window is not None:
-            better = gn < STALL_IMPROVEMENT * best[active]
-            best[active[better]] = gn[better]
+            better = metric < STALL_IMPROVEMENT * best[active]
+            best[active[better]] = metric[better]
             last_gain[active[better]] = k
             status[(status == "") & (k - last_gain[active] >= window[active])] = "stalled"
         if stop:
@@ -147,16 +171,24 @@ def simulate(
         if active.size == 0:
             break
         with np.errstate(over="ignore", invalid="ignore"):
-            g, bits = meth.direction(grads, keys, k)
+            g, bits = meth.direction(grads, keys, k, X)
         up[active] += bits.mean(axis=1)
+        used = meth.gradient_evals()
+        evals[active] += sizes.mean() if used is None else used.mean(axis=1)
+        passes[active] += 1.0 if used is None else (used / sizes).mean(axis=1)
         down[active] += dense_bits(d)  # the server broadcasts one dense vector
         want_loss = loss_every > 0 and (k + 1) % loss_every == 0
         # Overflow and NaN are expected on diverging trajectories: they are
         # caught by the divergence test above, not raised.
         with np.errstate(over="ignore", invalid="ignore"):
             X = X - step[:, None] * g
-            grads, lossk = problem.local_grads(X, with_loss=want_loss)
+            grads, lossk = problem.local_grads(X, with_loss=want_loss or track_loss)
             gn = _norm_sq(grads)
+            metric = lossk.mean(axis=1) - loss_ref if track_loss else gn
+        if track_loss:
+            row = np.full(B, np.nan)
+            row[active] = lossk.mean(axis=1)
+            f_hist.append(row)
         if want_loss:
             loss_log.append((k + 1, active.copy(), lossk.mean(axis=1)))
         row = np.full(B, np.nan)
@@ -165,18 +197,22 @@ def simulate(
         row = np.full(B, np.nan)
         row[active] = up[active]
         up_hist.append(row)
-        if monitor is not None and monitor(k + 1, active, up[active], gn):
+        if monitor is not None and monitor(k + 1, active, up[active], metric):
             stop = True
 
     with np.errstate(over="ignore", invalid="ignore"):
         loss_end = problem.local_losses(final_x).mean(axis=1)
     gn_hist = np.array(gn_hist)
     up_hist = np.array(up_hist)
+    f_hist = None if f_hist is None else np.array(f_hist)
     result = []
     for b in range(B):
         status, rounds = out[b]
-        lr = [(r, vals[np.flatnonzero(idx == b)[0]]) for r, idx, vals in loss_log if r < rounds and b in idx]
-        lr.append((rounds, loss_end[b]))
+        if f_hist is not None:  # f at every round: x^rounds is the last iterate
+            lr = list(zip(range(rounds + 1), f_hist[: rounds + 1, b]))
+        else:
+            lr = [(r, vals[np.flatnonzero(idx == b)[0]]) for r, idx, vals in loss_log if r < rounds and b in idx]
+            lr.append((rounds, loss_end[b]))
         result.append(
             Trajectory(
                 seed=int(seeds[b]),
@@ -184,11 +220,14 @@ def simulate(
                 rounds=rounds,
                 uplink_bits=float(up[b]),
                 downlink_bits=float(down[b]),
+                gradient_evals=float(evals[b]),
+                gradient_passes=float(passes[b]),
                 grad_norm_sq=gn_hist[: rounds + 1, b].copy(),
                 uplink_curve=up_hist[: rounds + 1, b].copy(),
                 loss_rounds=np.array([r for r, _ in lr], dtype=np.int64),
                 loss=np.array([v for _, v in lr], dtype=np.float64),
                 x=final_x[b].copy(),
+                progress=None if f_hist is None else f_hist[: rounds + 1, b] - loss_ref,
             )
         )
     return result

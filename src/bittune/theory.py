@@ -26,7 +26,7 @@ from .methods import dense_bits
 __all__ = [
     "TheoryPoint", "RULES", "theory_point", "theory_table", "measured_contraction",
     "default_compressor_specs", "gd_rule", "dcgd_rule", "diana_rule", "marina_rule", "ef21_rule",
-    "pp_marina_rule", "ab_step_size", "fits",
+    "pp_marina_rule", "vr_marina_rule", "ab_step_size", "fits", "pl_point", "PL_METHODS",
 ]
 
 
@@ -44,11 +44,15 @@ class TheoryPoint:
     source: str  # short citation of the rule
     note: str = ""
     clients: int | None = None  # PP-MARINA: clients r sampled per compressed round
+    minibatch: int | None = None  # VR-MARINA: rows b' per worker per compressed round
+    #: Under PL (constants.pl_mu): the predicted per-round contraction 1 - gamma mu of the gap
+    #: (linear rate); None for the non-convex rules.
+    rate: float | None = None
 
     def method_params(self) -> dict[str, float]:
         """The method parameters in the form :func:`bittune.simulate.simulate` takes."""
         out = {"sync_probability": self.sync_probability, "shift_rate": self.shift_rate,
-               "clients": self.clients}
+               "clients": self.clients, "minibatch": self.minibatch}
         return {k: v for k, v in out.items() if v is not None}
 
     def to_dict(self) -> dict:
@@ -60,8 +64,10 @@ class TheoryPoint:
             "sync_probability": None if self.sync_probability is None else float(self.sync_probability),
             "shift_rate": None if self.shift_rate is None else float(self.shift_rate),
             "clients": None if self.clients is None else int(self.clients),
+            "minibatch": None if self.minibatch is None else int(self.minibatch),
             "predicted_rounds": int(self.predicted_rounds),
             "predicted_bits_per_worker": float(self.predicted_bits_per_worker),
+            **({} if self.rate is None else {"linear_rate": float(self.rate)}),
             "source": self.source,
         }
 
@@ -74,9 +80,10 @@ def _rounds(numerator: float, target: float) -> int:
     return max(1, math.ceil(value))
 
 
-def _point(method, comp, gamma, rounds, bits, source, *, sync=None, shift=None, note="", clients=None):
+def _point(method, comp, gamma, rounds, bits, source, *, sync=None, shift=None, note="", clients=None,
+           minibatch=None):
     return TheoryPoint(method, comp.label(), float(gamma), sync, shift, int(rounds), float(bits),
-                       source, note, clients)
+                       source, note, clients, minibatch)
 
 
 def gd_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
@@ -206,6 +213,41 @@ def pp_marina_rule(compressor: Compressor, constants: Constants, *, target: floa
                   "Gorbunov et al. 2021, Thm 4.1 (from memory)", sync=p, clients=r)
 
 
+def vr_marina_rule(compressor: Compressor, constants: Constants, *, target: float,
+                   minibatch: int | None = None) -> TheoryPoint:
+    """VR-MARINA, minibatches of b' rows drawn with replacement (THEORY.md 2.5).
+
+    Gorbunov, Burlachenko, Li, Richtarik, "MARINA: Faster Non-Convex Distributed
+    Learning with Compression", ICML 2021, Theorem 3.1 (number and form from
+    memory; THEORY.md re-derives the form): p = min(zeta/d, b'/(m + b')),
+    gamma = 1/(L + sqrt(((1-p)/(p n)) (omega L_QM^2 + (1+omega) calL^2/b'))),
+    E||grad f(x_hat)||^2 <= 2 Delta0/(gamma K). calL is the average smoothness
+    (``constants.L_sample``), m the mean worker size. Bits as MARINA's;
+    gradient evaluations per worker p m + (1-p) 2 b' per round (in ``note``).
+    ``minibatch`` defaults to :func:`bittune.methods.vr_marina.default_minibatch`.
+    """
+    from .methods.vr_marina import default_minibatch
+
+    c, omega, n = constants, compressor.omega, constants.n_workers
+    if c.L_sample is None or c.samples_per_worker is None:
+        raise ValueError("vr_marina needs constants.L_sample and samples_per_worker (a model with "
+                         "per-sample gradients, measured by the probe)")
+    m_min = int(c.min_samples_per_worker or c.samples_per_worker)
+    b = default_minibatch([m_min]) if minibatch is None else minibatch
+    if isinstance(b, (bool, np.bool_)) or not isinstance(b, (int, np.integer)) or b < 1:
+        raise ValueError(f"minibatch must be an integer >= 1, got {minibatch!r}")
+    b, m = int(b), float(c.samples_per_worker)
+    p = min(compressor.density / compressor.dim, b / (m + b))
+    var = omega * c.L_qm ** 2 + (1.0 + omega) * c.L_sample ** 2 / b
+    gamma = 1.0 / (c.L + math.sqrt((1.0 - p) / (p * n) * var))
+    rounds = _rounds(2.0 * c.delta0 / gamma, target)
+    per_round = p * dense_bits(c.dim) + (1.0 - p) * compressor.nominal_bits
+    evals = p * m + (1.0 - p) * 2.0 * b
+    return _point("vr_marina", compressor, gamma, rounds, dense_bits(c.dim) + rounds * per_round,
+                  "Gorbunov et al. 2021, Thm 3.1 (from memory)", sync=p, minibatch=b,
+                  note=f"{evals:.4g} gradient evaluations per worker per round (m = {m:.4g})")
+
+
 def ef21_rule(compressor: Compressor, constants: Constants, *, target: float,
               alpha: float | None = None) -> TheoryPoint:
     """EF21 (THEORY.md 2.9).
@@ -234,8 +276,81 @@ def ef21_rule(compressor: Compressor, constants: Constants, *, target: float,
 #: One rule per method name (the keys of :data:`bittune.methods.METHODS`).
 RULES: dict[str, Callable[..., TheoryPoint]] = {
     "gd": gd_rule, "dcgd": dcgd_rule, "diana": diana_rule, "marina": marina_rule, "ef21": ef21_rule,
-    "pp_marina": pp_marina_rule,
+    "pp_marina": pp_marina_rule, "vr_marina": vr_marina_rule,
 }
+
+
+#: Methods with a PL rule (THEORY.md 2.7, 2.9; Karimi et al. 2016 for GD). DCGD and DIANA
+#: keep their non-convex rules under PL (THEORY.md has no PL form for them).
+PL_METHODS = ("gd", "marina", "pp_marina", "vr_marina", "ef21")
+
+
+def _pl_rounds(gamma: float, mu: float, c: Constants, target: float) -> int:
+    """Rounds for (1 - gamma mu)^K Delta0 <= target / (2 L).
+
+    An L-smooth f has ||grad f||^2 <= 2 L (f - f_inf) (Nesterov 2004, eq. 2.1.7, from
+    memory), so a gap of target/(2L) meets the target on ||grad f||^2.
+    """
+    q = 1.0 - gamma * mu
+    need = c.delta0 * 2.0 * c.L / target
+    if need <= 1.0:
+        return 1
+    if q <= 0.0:
+        return 1
+    return max(1, math.ceil(math.log(need) / -math.log(q)))
+
+
+def pl_point(point: TheoryPoint, compressor: Compressor, constants: Constants, *, target: float,
+             alpha: float | None = None) -> TheoryPoint:
+    """The PL version of a non-convex theory point (``constants.pl_mu`` set; THEORY.md 2.7, 2.9).
+
+    * GD: gamma = 1/L and f(x^K) - f_inf <= (1 - mu/L)^K Delta0 (Karimi, Nutini,
+      Schmidt, ECML-PKDD 2016, Thm 1; from memory).
+    * MARINA: gamma = min{1/(L + L_QM sqrt(2 (1-p) omega/(p n))), p/(2 mu)} and
+      E[f(x^K) - f_inf] <= (1 - gamma mu)^K Delta0 (Gorbunov et al. 2021, PL theorem;
+      number from memory, form THEORY.md 2.7; the start g^0 = grad f(x^0) makes the
+      Lyapunov term (gamma/p)||g - grad f||^2 zero). PermK keeps its AB step, capped by p/(2 mu).
+    * PP-MARINA and VR-MARINA: their non-convex variance terms with the same factor 2,
+      min with p/(2 mu) ("analogous", THEORY.md 2.7, from memory).
+    * EF21: gamma = min{1/(L + L_QM sqrt(2 beta/theta)), theta/(2 mu)} (Richtarik et al.
+      2021, Thm 2; from memory; dense start, G^0 = 0).
+    Rounds from the linear rate (:func:`_pl_rounds`); bits as the non-convex rule counts them.
+    ``alpha``: EF21's contraction (measured or worst case), as the EF21 rule took it.
+    """
+    c, mu, omega = constants, float(constants.pl_mu), compressor.omega
+    m = point.method
+    p = point.sync_probability
+    if m == "gd":
+        gamma = 1.0 / c.L
+    elif m == "marina" and compressor.correlated:
+        gamma = min(point.step_size, p / (2.0 * mu))
+    elif m == "marina":
+        gamma = min(1.0 / (c.L + c.L_qm * math.sqrt(2.0 * (1.0 - p) * omega / (p * c.n_workers))), p / (2.0 * mu))
+    elif m == "pp_marina":
+        r = point.clients
+        gamma = min(1.0 / (c.L + c.L_qm * math.sqrt(2.0 * (1.0 - p) * (1.0 + omega) / (p * r))), p / (2.0 * mu))
+    elif m == "vr_marina":
+        b = point.minibatch
+        var = omega * c.L_qm ** 2 + (1.0 + omega) * c.L_sample ** 2 / b
+        gamma = min(1.0 / (c.L + math.sqrt(2.0 * (1.0 - p) / (p * c.n_workers) * var)), p / (2.0 * mu))
+    elif m == "ef21":
+        a = compressor.alpha if alpha is None else float(alpha)
+        theta = a / (1.0 + math.sqrt(1.0 - a))  # 1 - sqrt(1-a) without cancellation
+        # sqrt(2 beta/theta) = sqrt(2) sqrt(1-a)/theta (THEORY.md 2.9)
+        gamma = min(1.0 / (c.L + c.L_qm * math.sqrt(2.0) * math.sqrt(1.0 - a) / theta), theta / (2.0 * mu))
+    else:
+        return point
+    rounds = _pl_rounds(gamma, mu, c, target)
+    per_round = (point.predicted_bits_per_worker - _start_bits(point, c)) / point.predicted_rounds
+    bits = _start_bits(point, c) + rounds * per_round
+    return TheoryPoint(m, point.compressor, float(gamma), point.sync_probability, point.shift_rate, int(rounds),
+                       float(bits), point.source + "; PL form", point.note, point.clients, point.minibatch,
+                       1.0 - gamma * mu)
+
+
+def _start_bits(point: TheoryPoint, c: Constants) -> float:
+    """Bits of the dense start message that a rule's prediction includes (all but GD and DCGD)."""
+    return 0.0 if point.method in ("gd", "dcgd") else dense_bits(c.dim)
 
 
 def _check_constants(c: Constants) -> None:
@@ -266,7 +381,7 @@ def fits(method: str, comp: Compressor) -> bool:
         return comp.name == "identity"
     if method == "ef21":
         return True
-    return comp.unbiased and (method == "marina" or not comp.correlated)
+    return comp.unbiased and (method == "marina" or not comp.correlated)  # vr_marina: independent Q_i
 
 
 _fits = fits  # the older private name
@@ -282,7 +397,7 @@ def _needs(method: str, comp: Compressor) -> str:
 
 def theory_point(method: str, compressor: Compressor | str | Mapping, constants: Constants, *,
                  target: float, contraction: float | None = None,
-                 clients: int | None = None) -> TheoryPoint:
+                 clients: int | None = None, minibatch: int | None = None) -> TheoryPoint:
     """The theory setting of ``method`` with ``compressor`` (object or spec like "rand_k:6").
 
     ``target`` is the absolute target on ||grad f||^2; ``contraction`` overrides
@@ -314,7 +429,14 @@ def theory_point(method: str, compressor: Compressor | str | Mapping, constants:
         if "clients" not in inspect.signature(rule).parameters:
             raise ValueError(f"clients applies to pp_marina only, not to {method}")
         kwargs["clients"] = clients
-    return rule(comp, constants, target=target, **kwargs)
+    if minibatch is not None:
+        if "minibatch" not in inspect.signature(rule).parameters:
+            raise ValueError(f"minibatch applies to vr_marina only, not to {method}")
+        kwargs["minibatch"] = minibatch
+    point = rule(comp, constants, target=target, **kwargs)
+    if constants.pl_mu is not None and method in PL_METHODS:
+        point = pl_point(point, comp, constants, target=target, alpha=kwargs.get("alpha"))
+    return point
 
 
 def default_compressor_specs(dim: int, *, n_workers: int | None = None) -> dict[str, list[str]]:
@@ -329,7 +451,7 @@ def default_compressor_specs(dim: int, *, n_workers: int | None = None) -> dict[
     unbiased = rand + ["dither:2", "dither:4", "natural", "natural_dither:3"]
     marina = unbiased + (["perm_k"] if n_workers is not None and n_workers > 1 else [])
     return {"gd": ["identity"], "dcgd": unbiased, "diana": unbiased, "marina": marina,
-            "pp_marina": unbiased, "ef21": [f"top_k:{k}" for k in ks] + rand}
+            "pp_marina": unbiased, "vr_marina": unbiased, "ef21": [f"top_k:{k}" for k in ks] + rand}
 
 
 def theory_table(constants: Constants, *, target: float, dim: int | None = None,

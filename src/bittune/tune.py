@@ -90,14 +90,21 @@ def prepare(job_path, overrides: dict, log, *, allow_code: bool = False) -> Prep
     job = replace(apply_overrides(load_job(job_path), overrides), allow_code=allow_code)
     ws = open_job(job)
     log.note(f"problem: {ws.problem.n_workers} workers, d = {ws.problem.dim}, "
-             f"{int(ws.problem.worker_sizes.sum())} samples; target ||grad f||^2 <= {ws.target:.3g}")
+             f"{int(ws.problem.worker_sizes.sum())} samples; target {ws.target_text()}")
+    if ws.reference is not None:
+        r = ws.reference
+        log.note(f"f_ref = {r['value']:.10g} by L-BFGS-B ({r['iterations']} iterations, {r['message']}; "
+                 f"||grad f||^2 = {r['grad_norm_sq']:.3g} there): {r['note']}")
     constants, report = probe_workspace(ws)
+    if ws.reference is not None:  # stored with the probe's constants: workers and reports reuse it
+        constants.extra["f_ref"] = dict(ws.reference)
     log.note(f"probe: gradient check passed (max rel. error {report.gradient_check.max_rel_error:.1e}); "
              f"L = {constants.L:.4g}, L_qm = {constants.L_qm:.4g}, L_pm = {constants.L_pm:.4g} "
              f"({report.oracle_calls} oracle calls, {report.seconds:.1f} s)")
     vectors, _ = ws.problem.local_grads(report.points)
-    space = Space(job.search, constants, target=ws.target, contraction_vectors=vectors)
+    space = Space(job.search, constants, target=ws.theory_target(constants.L), contraction_vectors=vectors)
     return Prepared(job, ws, constants, report, space, overrides, network_model(job, ws))
+
 
 
 def network_model(job: Job, ws):
@@ -119,7 +126,8 @@ def respace(prep: Prepared, overrides: dict) -> Prepared:
     overrides = {**prep.overrides, **{k: v for k, v in overrides.items() if v is not None}}
     job = apply_overrides(prep.job, overrides)
     vectors, _ = prep.ws.problem.local_grads(prep.report.points)
-    space = Space(job.search, prep.constants, target=prep.ws.target, contraction_vectors=vectors)
+    space = Space(job.search, prep.constants, target=prep.ws.theory_target(prep.constants.L),
+                  contraction_vectors=vectors)
     return Prepared(job, prep.ws, prep.constants, prep.report, space, overrides, prep.network)
 
 
@@ -171,7 +179,7 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
             ws = prep.ws
             objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                                   max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
-                                  seeds=search_seeds(spec), worker=0, network=prep.network)
+                                  seeds=search_seeds(spec), worker=0, network=prep.network, loss_ref=ws.loss_ref)
             run_trials(open_study(store, name, sampler_seed=sampler_seeds[0], pruner=spec.pruner), objective,
                        budget=spec.trials)
         else:
@@ -258,19 +266,21 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int | None =
         from dataclasses import replace
 
         job = replace(apply_overrides(job, overrides), allow_code=allow_code)
-        ws = open_job(job)
+        constants = Constants.from_dict(attrs["constants"])
+        # A loss-gap target's f_ref comes from the study (found once by the coordinator), not
+        # recomputed: every process then stops at the same level.
+        ws = open_job(job, reference=constants.extra.get("f_ref"))
         if sampler_seed is None:
             sampler_seed = int(np.random.SeedSequence().generate_state(1)[0])  # fresh entropy per worker
         study = open_study(store, name, sampler_seed=sampler_seed, pruner=job.search.pruner)
-        constants = Constants.from_dict(attrs["constants"])
         # Same space as the coordinator's: constants and probe points from the study.
         vectors, _ = ws.problem.local_grads(np.asarray(attrs["probe_points"]))
-        space = Space(job.search, constants, target=ws.target, contraction_vectors=vectors)
+        space = Space(job.search, constants, target=ws.theory_target(constants.L), contraction_vectors=vectors)
         net = attrs.get("network")
         network = None if net is None else NetworkModel(**net)
         objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                               max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
-                              seeds=search_seeds(job.search), worker=index, network=network)
+                              seeds=search_seeds(job.search), worker=index, network=network, loss_ref=ws.loss_ref)
         return run_trials(study, objective, budget=budget or int(attrs.get("budget", job.search.trials)))
 
 
@@ -295,6 +305,8 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
                              .round().astype(int))
             out.append({"seed": r.seed, "status": r.status, "rounds": keep.tolist(),
                         "uplink_bits": r.uplink_curve[keep].tolist(), "grad_norm_sq": r.grad_norm_sq[keep].tolist()})
+            if ws.reference is not None:
+                out[-1]["loss_gap"] = r.progress[keep].tolist()  # f(x^k) - f_ref
         return out
 
     rows = []
@@ -303,11 +315,14 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
         best = space.theory_density(method)  # the baseline's setting, which a coarse grid may miss
         comps += [] if best in comps else [best]
         rows += [space.theory(method, comp).to_dict() for comp in comps]
+    if ws.reference is not None:  # no published rate to a loss gap: steps only (Workspace.theory_target)
+        rows = [{**r, "predicted_rounds": None, "predicted_bits_per_worker": None} for r in rows]
     gc = report.gradient_check
     doc = {
         "bittune_summary": 1,
         "job": str(job.path), "config": str(Path(output).absolute()), "study": study, "storage": storage,
-        "problem": ws.summary(), "target_grad_norm_sq": float(ws.target),
+        "problem": ws.summary(), "target": ws.target_doc(),
+        "target_grad_norm_sq": float(ws.target) if ws.reference is None else None,
         "constants": constants.to_dict(),
         "probe": {"max_rel_error": gc.max_rel_error, "passed": gc.passed, "tolerance": gc.threshold,
                   "oracle_calls": report.oracle_calls, "seconds": report.seconds},
@@ -345,19 +360,22 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str) -> dict
     w, b = sel.winner.summary(), sel.baseline.summary()
     doc = {"bittune_config": 1, **sel.winner.candidate.to_config(),
            "problem": {"dimension": int(ws.problem.dim), "workers": int(ws.problem.n_workers)}}
+    doc["target"] = ws.target_doc()  # the kind, the job's value, the absolute threshold (and f_ref)
     doc["expected"] = {
         "validation_seeds": sel.seeds,
         "reached_all": bool(sel.all_reached),
         "mean_bits_per_worker": w["mean_bits_per_worker"], "std_bits_per_worker": w["std_bits_per_worker"],
         "mean_rounds": w["mean_rounds"], "std_rounds": w["std_rounds"],
         "bits_per_worker": w["bits_per_worker"], "rounds": w["rounds"],
+        "mean_gradient_evals_per_worker": w["mean_gradient_evals_per_worker"],
         "theory_baseline": {k: b[k] for k in ("method", "compressor", "step_size", "sync_probability",
                                                "shift_rate", "reached", "mean_bits_per_worker",
                                                "std_bits_per_worker", "mean_rounds")},
         "objective": job.objective,
         "gain_over_theory": float(sel.gain()),
         "gain_is_lower_bound": not sel.baseline.all_reached,
-        "target_grad_norm_sq": float(ws.target),
+        **({"target_grad_norm_sq": float(ws.target)} if ws.reference is None
+           else {"target_loss_gap": float(ws.target), "f_ref": ws.loss_ref}),
     }
     if prep.network is not None:
         doc["expected"].update(mean_seconds=w["mean_seconds"], std_seconds=w["std_seconds"],
@@ -368,6 +386,12 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str) -> dict
     c = constants.to_dict()
     doc["constants"] = {k: c[k] for k in ("L", "L_am", "L_qm", "L_max", "L_plus", "L_pm", "delta0",
                                           "grad_sq0", "heterogeneity0", "safety", "L_workers")}
+    if c.get("L_sample") is not None:  # VR-MARINA's average smoothness
+        doc["constants"]["L_sample"] = c["L_sample"]
+    if c.get("pl_mu") is not None:  # stated by the job (assume.pl_mu), used by the theory baseline
+        doc["constants"]["pl_mu"] = c["pl_mu"]
+    if ws.reference is not None:
+        doc["constants"]["f_ref"] = dict(ws.reference)  # value and how L-BFGS-B found it
     doc["constants"]["samples"] = int(ws.problem.worker_sizes.sum())
     doc["constants"]["worker_samples"] = [int(v) for v in ws.problem.worker_sizes]
     data_path = job.data.path

@@ -9,12 +9,13 @@ from .ef21 import EF21
 from .gd import GD
 from .marina import MARINA
 from .pp_marina import PPMARINA
+from .vr_marina import VRMARINA
 
 __all__ = ["Method", "METHODS", "make_method", "dense_bits", "GD", "DCGD", "DIANA", "MARINA", "PPMARINA",
-           "EF21"]
+           "VRMARINA", "EF21"]
 
 #: Registry by config name. A new method is one file here plus its entry.
-METHODS: dict[str, type[Method]] = {m.name: m for m in (GD, DCGD, DIANA, MARINA, PPMARINA, EF21)}
+METHODS: dict[str, type[Method]] = {m.name: m for m in (GD, DCGD, DIANA, MARINA, PPMARINA, VRMARINA, EF21)}
 
 
 def make_method(name: str, *, compressor, n_workers: int, dim: int, batch: int, **params) -> Method:

@@ -44,12 +44,25 @@ class Method(ABC):
         if params:
             raise ValueError(f"{self.name}: unknown parameters {sorted(params)}")
         self.state: dict[str, np.ndarray] = {}
+        #: The problem being simulated (set by :meth:`bind`); only methods that call
+        #: an oracle of their own (minibatches) use it.
+        self.problem = None
+
+    def bind(self, problem) -> None:
+        """Attach the simulated problem (the engine calls this once, before round 0)."""
+        self.problem = problem
 
     @abstractmethod
     def direction(
-        self, grads: np.ndarray, keys: np.ndarray, round_: int
+        self, grads: np.ndarray, keys: np.ndarray, round_: int, X: np.ndarray | None = None
     ) -> tuple[np.ndarray, np.ndarray]:
-        """Direction (B, d) from local gradients (B, n, d) at x^k, and uplink bits (B, n)."""
+        """Direction (B, d) from local gradients (B, n, d) at the iterates X (B, d), and uplink bits (B, n)."""
+
+    def gradient_evals(self) -> np.ndarray | None:
+        """Per-sample gradients each worker computed in the last :meth:`direction` call, (B, n);
+        None for a full local gradient (m_i per worker), which is every method's cost but a
+        minibatch method's."""
+        return None
 
     def keep(self, index: np.ndarray) -> None:
         """Drop finished trajectories: keep rows ``index`` of every array."""

@@ -14,6 +14,6 @@ __all__ = ["DCGD"]
 class DCGD(Method):
     name = "dcgd"
 
-    def direction(self, grads, keys, round_):
+    def direction(self, grads, keys, round_, X=None):
         q, bits = self.compressor.compress(grads, keys, round_)
         return q.mean(axis=1), bits

@@ -19,7 +19,7 @@ class DIANA(Method):
     name = "diana"
     params = {"shift_rate": lambda c: 1.0 / (1.0 + c.omega)}
 
-    def direction(self, grads, keys, round_):
+    def direction(self, grads, keys, round_, X=None):
         if "h" not in self.state:
             self.state["h"] = grads.copy()
             return grads.mean(axis=1), self._dense(grads)

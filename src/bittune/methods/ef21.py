@@ -17,7 +17,7 @@ __all__ = ["EF21"]
 class EF21(Method):
     name = "ef21"
 
-    def direction(self, grads, keys, round_):
+    def direction(self, grads, keys, round_, X=None):
         if "gi" not in self.state:
             self.state["gi"] = grads.copy()
             return grads.mean(axis=1), self._dense(grads)

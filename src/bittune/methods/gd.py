@@ -15,5 +15,5 @@ __all__ = ["GD"]
 class GD(Method):
     name = "gd"
 
-    def direction(self, grads, keys, round_):
+    def direction(self, grads, keys, round_, X=None):
         return grads.mean(axis=1), self._dense(grads)

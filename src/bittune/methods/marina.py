@@ -21,7 +21,7 @@ class MARINA(Method):
     name = "marina"
     params = {"sync_probability": lambda c: min(1.0, c.density / c.dim)}
 
-    def direction(self, grads, keys, round_):
+    def direction(self, grads, keys, round_, X=None):
         if "g" not in self.state:
             self.state["g"] = grads.mean(axis=1)
             self.state["prev"] = grads  # the engine hands a fresh array every round

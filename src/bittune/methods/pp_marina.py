@@ -51,7 +51,7 @@ class PPMARINA(Method):
             params["sync_probability"] = np.minimum(1.0, compressor.density * r / (compressor.dim * n))
         super().__init__(compressor=compressor, n_workers=n, dim=dim, batch=batch, clients=r, **params)
 
-    def direction(self, grads, keys, round_):
+    def direction(self, grads, keys, round_, X=None):
         if "g" not in self.state:
             self.state["g"] = grads.mean(axis=1)
             self.state["prev"] = grads  # the engine hands a fresh array every round

@@ -65,6 +65,15 @@ class StackedProblem(Problem):
             self._pass(X[s], grads[s], None if loss is None else loss[s])
         return self._add_regulariser(X, grads, loss)
 
+    def weighted_grads(self, X: np.ndarray, weights: np.ndarray) -> np.ndarray:
+        """sum_j w_bij grad f_ij(x_b) per worker, (B, n, D) (see :meth:`Problem.weighted_grads`)."""
+        X = self._check(X)
+        W = self._check_weights(X, weights)
+        grads = np.empty((X.shape[0], self.n_workers, self.dim))
+        for s in self._slices(X.shape[0]):
+            self._pass(X[s], grads[s], None, weights=W[s])
+        return self._add_weighted_regulariser(X, grads, W)
+
     def local_losses(self, X: np.ndarray) -> np.ndarray:
         """Values (B, n) of every f_i."""
         X = self._check(X)

@@ -30,6 +30,8 @@ class Problem(ABC):
 
     #: Name used in job files.
     name: str = ""
+    #: True when :meth:`weighted_grads` (per-sample gradients for minibatches) is available.
+    has_samples: bool = True
     #: Sign folded into the per-worker scale 1/m_i of the backward pass, so that
     #: ``_residual_weights`` can skip a negation pass.
     _weight_sign: float = 1.0
@@ -75,6 +77,45 @@ class Problem(ABC):
 
         self.shards.run(work)
         return self._add_regulariser(X, grads, loss)
+
+    def weighted_grads(self, X: np.ndarray, weights: np.ndarray) -> np.ndarray:
+        """sum_j w_bij grad f_ij(x_b) per worker, (B, n, d): the minibatch oracle.
+
+        f_ij is row j's loss plus the regulariser, so f_i = (1/m_i) sum_j f_ij.
+        ``weights`` (B, n, m_max) replaces the 1/m_i of :meth:`local_grads`
+        (w = 1/m_i on every row gives it back); rows past m_i must get 0.
+        """
+        X = self._check(X)
+        W = self._check_weights(X, weights)
+        grads = np.empty((X.shape[0], self.n_workers, self.dim))
+
+        def work(blk: Block) -> None:
+            R = self._row_residuals(blk.forward(X), blk)
+            R *= W[:, blk.lo : blk.hi]
+            out = grads[:, blk.lo : blk.hi]
+            blk.backward(R, out)
+            if self._weight_sign != 1.0:
+                out *= self._weight_sign
+
+        self.shards.run(work)
+        return self._add_weighted_regulariser(X, grads, W)
+
+    def _check_weights(self, X: np.ndarray, weights) -> np.ndarray:
+        W = np.asarray(weights, dtype=np.float64)
+        want = (X.shape[0], self.n_workers, self.shards.m_max)
+        if W.shape != want:
+            raise ValueError(f"weights must have shape {want}, got {W.shape}")
+        return W
+
+    def _add_weighted_regulariser(self, X: np.ndarray, grads: np.ndarray, W: np.ndarray) -> np.ndarray:
+        """Every f_ij carries the regulariser: add (sum_j w_ij) times its gradient."""
+        Xw = X if X.ndim == 3 else X[:, None, :]
+        grads += W.sum(axis=2)[:, :, None] * self._reg_grad(Xw)
+        return grads
+
+    def _row_residuals(self, z: np.ndarray, blk: Block) -> np.ndarray:
+        """Per-row derivative of the loss in z including every target term (no shift applied later)."""
+        return self._residual_weights(z, blk)
 
     def local_losses(self, X: np.ndarray) -> np.ndarray:
         """Values (B, n) of every f_i."""

@@ -32,6 +32,10 @@ class LeastSquares(Problem):
     def _residual_weights(self, z, blk):
         return z
 
+    def _row_residuals(self, z, blk):
+        z -= blk.y  # the minibatch oracle has no precomputed shift
+        return z
+
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
         # Hessian of f_i is A_i^T A_i/m_i + lam I: the bounds are exact (THEORY.md 3.2).
         per, pooled = self.shards.gram_top_eigs()

@@ -140,8 +140,10 @@ class MLP(StackedProblem):
     def _stack_width(self) -> int:
         return self.hidden
 
-    def _pass(self, X: np.ndarray, grads: np.ndarray | None, loss: np.ndarray | None) -> None:
-        """Forward and backward pass for the iterates X (B, D) or (B, n, D), every worker."""
+    def _pass(self, X: np.ndarray, grads: np.ndarray | None, loss: np.ndarray | None,
+              weights: np.ndarray | None = None) -> None:
+        """Forward and backward pass for the iterates X (B, D) or (B, n, D), every worker; ``weights``
+        (B, n, m_max) replaces the per-worker 1/m_i of the gradient (the minibatch oracle)."""
         B, h, d = X.shape[0], self.hidden, self.n_features
         hd = h * d
         shared = X.ndim == 2
@@ -169,7 +171,11 @@ class MLP(StackedProblem):
             if grads is None:
                 return
             r = self._residual_weights(out, blk)  # dloss/do per row, 0 on padded rows
-            inv = 1.0 / blk.sizes
+            if weights is not None:  # the row weights take the place of 1/m_i
+                r *= weights[:, blk.lo : blk.hi]
+                inv = np.ones(blk.nb)
+            else:
+                inv = 1.0 / blk.sizes
             g = grads[:, blk.lo : blk.hi]
             g[..., hd + h : hd + 2 * h] = np.einsum("bhnm,bnm->bnh", act, r) * inv[None, :, None]
             g[..., -1] = r.sum(axis=2) * inv

@@ -132,6 +132,8 @@ class PluginProblem:
     """
 
     name = "plugin"
+    #: The user's function gives whole-worker losses only: no minibatch oracle (VR-MARINA).
+    has_samples = False
 
     def __init__(
         self,

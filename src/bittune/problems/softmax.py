@@ -107,8 +107,10 @@ class Softmax(StackedProblem):
     def _stack_width(self) -> int:
         return self.n_classes
 
-    def _pass(self, X: np.ndarray, grads: np.ndarray | None, loss: np.ndarray | None) -> None:
-        """One pass over the data for the iterates X (B, C*d) or (B, n, C*d)."""
+    def _pass(self, X: np.ndarray, grads: np.ndarray | None, loss: np.ndarray | None,
+              weights: np.ndarray | None = None) -> None:
+        """One pass over the data for the iterates X (B, C*d) or (B, n, C*d); ``weights``
+        (B, n, m_max) replaces the per-worker 1/m_i of the gradient (the minibatch oracle)."""
         B, C, d = X.shape[0], self.n_classes, self.n_features
         Xs = stack_rows(X.reshape(*X.shape[:-1], C, d))
         g4 = None if grads is None else grads.reshape(B, self.n_workers, C, d)  # a view: grads is contiguous
@@ -120,9 +122,12 @@ class Softmax(StackedProblem):
             if g4 is None:
                 return
             R = self._residual_weights(z, blk)
+            if weights is not None:
+                R *= weights[:, None, blk.lo : blk.hi]
             out = np.empty((B * C, blk.nb, d))
             blk.backward(R.reshape(B * C, blk.nb, blk.m), out)
-            np.multiply(unstack_rows(out, B), (1.0 / blk.sizes)[None, :, None, None], out=g4[:, blk.lo : blk.hi])
+            scale = np.ones(blk.nb) if weights is not None else 1.0 / blk.sizes
+            np.multiply(unstack_rows(out, B), scale[None, :, None, None], out=g4[:, blk.lo : blk.hi])
 
         self.shards.run(work)
 
