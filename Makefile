@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: install demo test bench bench-tuning clean
+.PHONY: install demo test bench bench-tuning bench-breadth clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -29,6 +29,9 @@ bench: $(STAMP)
 
 bench-tuning: $(STAMP)
 	$(PY) benchmarks/tuning.py
+
+bench-breadth: $(STAMP)
+	$(PY) benchmarks/breadth.py
 
 clean:
 	rm -rf $(VENV) build src/*.egg-info .pytest_cache runs

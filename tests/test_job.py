@@ -202,6 +202,17 @@ def test_digest_of_a_mapping_is_stable(folder):
     assert a != parse_job(_valid(model="least_squares"), base_dir=folder, source="j").digest
 
 
+def test_digest_covers_a_plugin_file(folder):
+    """A changed user model is another job: its study must not be resumed with the new code."""
+    (folder / "model.py").write_text("def make(X, y):\n    return None\n")
+    (folder / "job.yaml").write_text(MINIMAL.replace("model: logistic_nonconvex",
+                                                     "model: plugin\nplugin: model.py:make"))
+    first = load_job(folder / "job.yaml").digest
+    assert first == load_job(folder / "job.yaml").digest
+    (folder / "model.py").write_text("def make(X, y):\n    return 1\n")
+    assert load_job(folder / "job.yaml").digest != first
+
+
 # --- errors --------------------------------------------------------------------
 
 ERRORS = [

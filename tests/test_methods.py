@@ -74,6 +74,7 @@ def test_gd_at_one_over_L_meets_the_descent_bound(model):
     ("marina", "perm_k", {}),
     ("pp_marina", "rand_k:6", {}),
     ("pp_marina", "natural_dither:3", {"clients": 2}),
+    ("vr_marina", "rand_k:6", {"minibatch": 8}),
 ])
 def test_each_method_reaches_the_target_on_breast_cancer(cancer, method, spec, params):
     """scikit-learn's bundled breast-cancer data (open dataset), standardised, 5 workers."""
@@ -90,6 +91,8 @@ def test_each_method_reaches_the_target_on_breast_cancer(cancer, method, spec, p
     ("gd", "identity", {}), ("marina", "perm_k", {}), ("dcgd", "natural_dither:2", {}),
     # one r per trajectory: the client draws of a trajectory must not depend on the others' r
     ("pp_marina", "rand_k:5", {"clients": np.array([1, 5, 2, 3])}),
+    # and one b' per trajectory: the row draws must not depend on the largest b' in the batch
+    ("vr_marina", "rand_k:5", {"minibatch": np.array([1, 8, 3, 30])}),
 ])
 def test_batch_equals_each_trajectory_alone(cancer, method, spec, params):
     _, L = cancer.smoothness_bounds()

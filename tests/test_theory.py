@@ -386,7 +386,23 @@ def _bound_constants(problem) -> Constants:
         n_workers=problem.n_workers, dim=problem.dim, L=float(L), L_workers=np.asarray(L_workers, dtype=float),
         L_plus=L_qm, L_pm=L_qm, delta0=problem.full_loss(x0) - problem.loss_lower_bound(),
         grad_sq0=float(gbar @ gbar), local_grad_sq0=float(np.mean(np.sum(g * g, axis=1))),
-        heterogeneity0=float(np.mean(np.sum((g - gbar) ** 2, axis=1))))
+        heterogeneity0=float(np.mean(np.sum((g - gbar) ** 2, axis=1))), L_sample=_sample_bound(problem),
+        samples_per_worker=float(problem.worker_sizes.mean()), min_samples_per_worker=int(problem.worker_sizes.min()))
+
+
+def _sample_bound(problem) -> float:
+    """An upper bound on the average smoothness calL (THEORY.md 2.5): row j's Hessian has norm at
+    most c ||a_j||^2 + r, with c = 1, r = lam for ridge least squares and c = 1/4, r = 2 lam for
+    the logistic loss with the non-convex regulariser (THEORY.md 3.2), so
+    calL_i^2 <= (1/m_i) sum_j (c ||a_j||^2 + r)^2."""
+    lam = problem.regularization
+    c, r = (1.0, lam) if problem.name == "least_squares" else (0.25, 2.0 * lam)
+    per = []
+    for blk in problem.shards.blocks:  # dense rows, padded with zeros (their terms are dropped)
+        for i in range(blk.nb):
+            sq = np.sum(blk._a3[i, : blk.sizes[i]] ** 2, axis=1)
+            per.append(np.mean((c * sq + r) ** 2))
+    return float(np.sqrt(np.mean(per)))
 
 
 def _generated_problem():
@@ -403,7 +419,8 @@ CASES = [("gd", "identity", False), ("diana", "rand_k:10", False), ("marina", "r
          ("ef21", "top_k:6", False), ("marina", "dither:2", False), ("ef21", "rand_k:6", False),
          ("ef21", "top_k:6", True),  # True: alpha measured on the local gradients at x^0
          ("marina", "perm_k", False), ("pp_marina", "rand_k:6", False), ("pp_marina", "rand_k:6", 2),
-         ("pp_marina", "natural_dither:2", False)]  # an integer: PP-MARINA's r
+         ("pp_marina", "natural_dither:2", False),  # an integer: PP-MARINA's r, or VR-MARINA's b'
+         ("vr_marina", "rand_k:6", 4), ("vr_marina", "dither:2", 16)]
 
 
 @pytest.fixture(scope="module", params=sorted(PROBLEMS))
@@ -419,20 +436,22 @@ def test_simulation_stays_under_the_published_bound(problem_and_constants, metho
     Bounds: GD, Nesterov 2004 sec. 1.2.3; DIANA, THEORY.md 2.3 (derived, H^0 = 0); MARINA,
     Gorbunov et al. 2021 Thm 2.1 (refined form); MARINA with PermK, Szlendak et al. 2022 (AB
     theorem, L_pm <= L_QM used, THEORY.md 3.1); PP-MARINA, Gorbunov et al. 2021 Thm 4.1; EF21,
-    Richtarik et al. 2021 Thm 1 (G^0 = 0).
+    Richtarik et al. 2021 Thm 1 (G^0 = 0); VR-MARINA, Gorbunov et al. 2021 Thm 3.1 (calL from
+    the closed-form bound of _sample_bound).
     With a measured alpha (THEORY.md 2.9) EF21's bound is a heuristic, not a theorem: checked too.
     """
     problem, c = problem_and_constants
     target = 0.01 * c.grad_sq0  # 1% of the starting ||grad f||^2 (common practice, no source)
     comp = make_compressor(spec, problem.dim, n_workers=problem.n_workers)
     clients = measure if method == "pp_marina" and measure else None
+    minibatch = measure if method == "vr_marina" and measure else None
     measure = measure is True
     alpha = None
     if measure:
         grads, _ = problem.local_grads(np.zeros((1, problem.dim)))
         alpha = measured_contraction(comp, grads)
         assert alpha > comp.alpha  # real gradients contract better than the worst case K/d
-    pt = theory_point(method, comp, c, target=target, contraction=alpha, clients=clients)
+    pt = theory_point(method, comp, c, target=target, contraction=alpha, clients=clients, minibatch=minibatch)
     K = pt.predicted_rounds
     seeds = range(20)
     runs = simulate(problem, method=method, compressor=comp, step_size=pt.step_size, seeds=seeds,
@@ -457,10 +476,10 @@ def test_simulation_stays_under_the_published_bound(problem_and_constants, metho
     per_round = comp.nominal_bits
     if method == "gd":
         assert np.allclose(sim_bits, pt.predicted_bits_per_worker, rtol=1e-12)
-    elif method in ("marina", "pp_marina"):
+    elif method in ("marina", "pp_marina", "vr_marina"):
         p = pt.sync_probability
-        # mean over workers of a compressed round: every worker sends (MARINA), or r of n draws
-        compressed = comp.nominal_bits * (1 if method == "marina" else pt.clients / problem.n_workers)
+        # mean over workers of a compressed round: every worker sends (MARINA, VR-MARINA), or r of n draws
+        compressed = comp.nominal_bits * (pt.clients / problem.n_workers if method == "pp_marina" else 1)
         per_round = p * 32 * problem.dim + (1 - p) * compressed
         if comp.name in ("rand_k", "perm_k", "natural_dither"):  # fixed mean over workers (PermK: 32 d/n)
             # Coin flips: over 20 seeds x (K-1) rounds the sync count is Binomial(20 (K-1), p);

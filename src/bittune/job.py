@@ -149,7 +149,7 @@ class Job:
     network: NetworkSpec
     model_options: dict
     raw: dict = field(repr=False)
-    digest: str  # sha256 hex of the job file bytes
+    digest: str  # sha256 hex of the job file bytes (and of a plugin model's .py file)
     allow_code: bool = False  # --allow-code: a plugin model may be imported
     assume: AssumeSpec = AssumeSpec(pl_mu=None)
 
@@ -262,6 +262,13 @@ def load_job(path: str | os.PathLike) -> Job:
     mapping = parse_yaml(data, source=str(p))
     job = parse_job(mapping, base_dir=p.absolute().parent, source=str(p),
                     digest=hashlib.sha256(data).hexdigest())
+    plugin = job.model_options.get("plugin", "")
+    module = plugin.rpartition(":")[0]
+    if module.endswith(".py") and Path(module).is_file():
+        # The user's model is part of the job: a study tuned with one version of the file must
+        # not be resumed or joined with another (the digest names the study's job).
+        both = hashlib.sha256(data + b"\0plugin\0" + Path(module).read_bytes())
+        job = replace(job, digest=both.hexdigest())
     return replace(job, path=p.absolute())
 
 

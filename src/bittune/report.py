@@ -344,6 +344,9 @@ CONSTANTS = (("L", "smoothness of f"), ("L_am", "mean of L_i"), ("L_qm", "quadra
              ("L_max", "max of L_i"), ("L_plus", "mean-squared smoothness L₊"), ("L_pm", "Hessian variance L±"),
              ("delta0", "f(x0) − lower bound"), ("grad_sq0", "‖∇f(x0)‖²"),
              ("heterogeneity0", "(1/n) Σ ‖∇f_i(x0) − ∇f(x0)‖²"), ("safety", "safety factor in the estimates"))
+#: Shown only when the job uses them (vr_marina; assume.pl_mu).
+OPTIONAL_CONSTANTS = (("L_sample", "average smoothness calL (VR-MARINA)"),
+                      ("pl_mu", "PL constant μ stated by the job (assume.pl_mu)"))
 
 
 def _eval_rows(evals: list[dict], winner: dict) -> list[list[str]]:
@@ -369,8 +372,11 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
                  ("p", f"Model {prob['model']}, {prob['samples']:,} samples, d = {prob['dimension']}, "
                        f"{prob['workers']} workers (sizes {min(sizes):,}–{max(sizes):,}); "
                        f"target {goal}.")]
-    extras = "".join(f", {name} {_fmt(w[k])}" for k, name in (("sync_probability", "sync probability"),
-                                                               ("shift_rate", "shift rate")) if w[k] is not None)
+    extras = "".join(f", {name} {_fmt(w.get(k))}" for k, name in (
+        ("sync_probability", "sync probability"), ("shift_rate", "shift rate"), ("clients", "clients per round"),
+        ("minibatch", "minibatch b'")) if w.get(k) is not None)
+    if w.get("mean_gradient_evals_per_worker") is not None:
+        extras += f"; {_bits(w['mean_gradient_evals_per_worker'])} gradient evaluations per worker on average"
     doc += [("h", "Result"), ("p", f"Chosen: {w['method']} + {w['compressor']}, step {_fmt(w['step_size'])}{extras}."),
             ("p", f"Expected on {w['seeds']} fresh seeds: {_bits(w['mean_bits_per_worker'])} uplink bits per worker "
                   f"(sd {_bits(w['std_bits_per_worker'])}, range {_bits(min(w['bits_per_worker']))}–"
@@ -426,7 +432,8 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
             ("p", f"Gradient check: max relative error {s['probe']['max_rel_error']:.1e} (tolerance "
                   f"{s['probe']['tolerance']:g}); {s['probe']['oracle_calls']} oracle calls."),
             ("table", ["constant", "meaning", "estimate", "closed-form bound"],
-             [[k, meaning, _fmt(c.get(k)), _fmt(bounds.get(k))] for k, meaning in CONSTANTS]),
+             [[k, meaning, _fmt(c.get(k)), _fmt(bounds.get(k))] for k, meaning in CONSTANTS]
+             + [[k, meaning, _fmt(c[k]), "—"] for k, meaning in OPTIONAL_CONSTANTS if c.get(k) is not None]),
             ("table", ["worker", "samples", "L_i estimate", "L_i bound"],
              [[str(i), _fmt(n), _fmt(e), _fmt(bd)] for i, n, e, bd in
               zip(sm["worker"], sm["samples"], sm["estimate"], sm["bound"])]),
@@ -440,8 +447,8 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
                      "★ (finer density grid)"])
     doc += [("h", "Theory settings"),
             ("p", "Published step-size rules at a few densities of each allowed compressor (★ = the baseline)."
-             + (" The rules predict rounds to a target on ‖∇f‖² only: for a loss-gap target no prediction "
-                "is given." if t["kind"] == "loss_gap" else "")),
+             + (" The non-convex rules predict rounds to a target on ‖∇f‖² only: for a loss-gap target they "
+                "give no prediction (the PL rules of assume.pl_mu do)." if t["kind"] == "loss_gap" else "")),
             ("table", ["method", "compressor", "step", "sync p", "shift rate", "predicted rounds",
                        "predicted bits/worker", "baseline"], rows),
             ("list", sorted({f"{r['method']}: {r['source']}" for r in s["theory"]}))]

@@ -315,8 +315,10 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
         best = space.theory_density(method)  # the baseline's setting, which a coarse grid may miss
         comps += [] if best in comps else [best]
         rows += [space.theory(method, comp).to_dict() for comp in comps]
-    if ws.reference is not None:  # no published rate to a loss gap: steps only (Workspace.theory_target)
-        rows = [{**r, "predicted_rounds": None, "predicted_bits_per_worker": None} for r in rows]
+    if ws.reference is not None:  # no published non-convex rate to a loss gap: steps only, unless a PL
+        # rule (assume.pl_mu) predicted the gap itself (theory._pl_rounds)
+        rows = [r if "linear_rate" in r else {**r, "predicted_rounds": None, "predicted_bits_per_worker": None}
+                for r in rows]
     gc = report.gradient_check
     doc = {
         "bittune_summary": 1,
