@@ -163,7 +163,7 @@ def test_vr_marina_defaults_and_errors(cancer):
         make_method("vr_marina", compressor=comp, n_workers=cancer.n_workers, dim=cancer.dim, batch=1, clients=2)
 
 
-def test_probe_estimates_the_average_smoothness_of_least_squares():
+def test_probe_estimates_the_average_smoothness_of_least_squares(monkeypatch):
     """calL_i^2 = lambda_max((1/m_i) sum_j (a_j a_j^T + lam I)^2) for least squares (THEORY.md 2.5
     definition; computed with numpy.linalg.eigvalsh). The estimator is stochastic (16 sign draws:
     about 18% standard error on calL_i, our analysis in probe._sample_smoothness), so the check is
@@ -180,6 +180,13 @@ def test_probe_estimates_the_average_smoothness_of_least_squares():
     exact = np.array(exact)
     est = _sample_smoothness(prob, rng.standard_normal((3, d)), iters=12, draws=16, rng=np.random.default_rng(2))
     assert np.all((est / exact > 0.5) & (est / exact < 1.6)), est / exact
+    # One sign draw per oracle call (the memory cap of large data): other random signs, same band.
+    import bittune.probe as probe_module
+
+    monkeypatch.setattr(probe_module, "_MAX_ELEMENTS", 1)
+    small = _sample_smoothness(prob, rng.standard_normal((3, d)), iters=12, draws=16, rng=np.random.default_rng(3))
+    assert np.all((small / exact > 0.5) & (small / exact < 1.6)), small / exact
+    monkeypatch.undo()
     c, _ = estimate_constants(prob, x0=np.zeros(d), rng=np.random.default_rng(0), sample_smoothness=True)
     assert c.L_sample >= c.L_qm  # calL_i >= L_i for every i, so their quadratic means too
     assert 0.5 * np.sqrt(np.mean(exact**2)) < c.L_sample < 1.6 * np.sqrt(np.mean(exact**2))

@@ -24,7 +24,8 @@ from bittune._yaml import (
 from bittune.errors import InputError
 
 __all__ = [
-    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "NetworkSpec", "AssumeSpec", "Job",
+    "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "NetworkSpec",
+    "AssumeSpec", "Job",
     "load_job", "parse_job", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
 ]
 

@@ -251,28 +251,35 @@ def _sample_smoothness(problem, pts: np.ndarray, *, iters: int, draws: int, rng)
 
     chunk = max(1, _MAX_ELEMENTS // (4 * P * n * m_max))  # sign draws per oracle call (memory)
 
-    def apply(S: np.ndarray, dirs: np.ndarray) -> np.ndarray:
-        """sum_j S[r, p, i, j] H_ij(x_p) dirs[r, p, i]: (R, P, n, d), ``chunk`` draws per oracle call."""
+    def signs(seed: int, a: int, r: int) -> np.ndarray:
+        """Draws a..a+r-1 of one iteration's Rademacher signs, (r, P, n, m_max), zero on padded
+        rows; regenerated from (seed, a) so both products of an iteration see the same signs
+        while only one chunk is ever in memory."""
+        g = np.random.default_rng([seed, a])
+        return np.where(g.random((r, P, n, m_max)) < 0.5, -1.0, 1.0) * mask
+
+    def apply(seed: int, dirs: np.ndarray) -> np.ndarray:
+        """sum_j s_j H_ij(x_p) dirs[r, p, i] for the iteration's signs: (R, P, n, d), ``chunk``
+        draws per oracle call."""
         out = np.empty_like(dirs)
         for a in range(0, dirs.shape[0], chunk):
             unit, norm = _unit(dirs[a : a + chunk], axis=3)
             shift = h[None, :, None, None] * unit
             X = pts[None, :, None, :] + np.stack([shift, -shift])  # (2, r, P, n, d)
-            Sa = S[a : a + chunk]
+            Sa = signs(seed, a, unit.shape[0])
             W = np.concatenate([Sa, Sa]).reshape(-1, n, m_max)
             G = problem.weighted_grads(X.reshape(-1, n, d), W).reshape(2, *unit.shape)
             out[a : a + chunk] = (G[0] - G[1]) / (2.0 * h[None, :, None, None]) * norm
         return out
 
-    v = _unit(rng.standard_normal((draws, P, n, d)), 3)[0]
-    v[:] = v[0]  # one direction per point and worker, shared by the sign draws
+    v = np.broadcast_to(_unit(rng.standard_normal((P, n, d)), 2)[0], (draws, P, n, d))  # shared by the draws
     est = np.zeros((P, n))
     for _ in range(iters):
-        S = np.where(rng.random((draws, P, n, m_max)) < 0.5, -1.0, 1.0) * mask
-        Av = apply(S, v)
+        seed = int(rng.integers(2**63))
+        Av = apply(seed, v)
         est = (np.sum(Av * Av, axis=3) / sizes).mean(axis=0)  # v^T M_i v, v unit
-        Mv = apply(S, Av).mean(axis=0) / sizes[None, :, None]
-        v[:] = _unit(Mv, 2)[0][None]
+        Mv = apply(seed, Av).mean(axis=0) / sizes[None, :, None]
+        v = np.broadcast_to(_unit(Mv, 2)[0], (draws, P, n, d))
     return np.sqrt(np.nan_to_num(est)).max(axis=0)
 
 
@@ -451,7 +458,8 @@ def probe_workspace(ws, *, strict: bool = True,
             run_rounds=spec.run_rounds, points_per_run=spec.points_per_run, power_iters=spec.power_iters,
             safety=spec.safety, lower_bound=spec.lower_bound, gradient_tolerance=spec.gradient_tolerance,
             strict=strict,
-            sample_smoothness=("vr_marina" in ws.job.search.methods) if sample_smoothness is None else sample_smoothness)
+            sample_smoothness=("vr_marina" in ws.job.search.methods if sample_smoothness is None
+                               else sample_smoothness))
     except ValueError as exc:  # every ValueError here is about the job's input
         key = "probe.lower_bound" if "lower_bound" in str(exc) else "start"
         raise InputError(f"{key}: {exc}", source=str(ws.job.path)) from None

@@ -350,8 +350,13 @@ class Objective:
             cost_at = lambda k, bits: bits  # noqa: E731
         else:
             net = self.network
-            cost_at = lambda k, bits: (k * (net.compute_seconds + net.latency + 32.0 * d / net.downlink_bandwidth)  # noqa: E731
-                                       + bits / net.uplink_bandwidth)
+            # Full local gradients per round: 1, or VR-MARINA's expected p + (1-p) 2b'/m_i.
+            passes = 1.0
+            if cand.minibatch is not None:
+                p = cand.sync_probability
+                passes = p + (1.0 - p) * float(np.mean(2.0 * cand.minibatch / self.problem.worker_sizes))
+            per_round = passes * net.compute_seconds + net.latency + 32.0 * d / net.downlink_bandwidth
+            cost_at = lambda k, bits: k * per_round + bits / net.uplink_bandwidth  # noqa: E731
         # Checkpoints start at the cost of four dense rounds and grow geometrically.
         monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at,
                                 start=cost_at(4, 4 * 32.0 * d))

@@ -21,7 +21,7 @@ from optuna.trial import TrialState
 
 from .compressors import make_compressor
 from .search import Candidate, Space, stall_window
-from .parallel import simulate_many
+from .parallel import start_batch
 from .simulate import Trajectory
 
 __all__ = ["Evaluation", "Selection", "validation_seeds", "evaluate", "select"]
@@ -110,20 +110,12 @@ def validation_seeds(spec) -> list[int]:
     return [1_000_000 + spec.seed * 1000 + j for j in range(spec.validation_seeds)]
 
 
-def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, *,
-             jobs: int | None = None) -> list[Evaluation]:
-    """Run each candidate on ``seeds``; candidates of one method and compressor share a batch.
-
-    The batches run in ``jobs`` processes (default: the job's ``search.jobs``;
-    :func:`bittune.parallel.simulate_many`).
-    """
+def _batches(ws, candidates: list[Candidate], seeds: list[int]) -> list[tuple[list[int], dict]]:
+    """One engine batch per method and compressor: (candidate indices, simulate() keyword arguments)."""
     groups: dict[tuple, list[int]] = {}
     for i, c in enumerate(candidates):
         groups.setdefault((c.method, c.label), []).append(i)
-    out: list[Evaluation | None] = [None] * len(candidates)
-    job = ws.job
-    S = len(seeds)
-    batches = []
+    job, S, out = ws.job, len(seeds), []
     for idx in groups.values():
         first = candidates[idx[0]]
         steps = np.repeat([candidates[i].step_size for i in idx], S)
@@ -133,16 +125,40 @@ def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, *,
             if vals[0] is not None:
                 params[key] = np.repeat(vals, S)
         comp = make_compressor(first.compressor, ws.problem.dim, n_workers=ws.problem.n_workers)
-        batches.append(dict(method=first.method, compressor=comp, step_size=steps, seeds=np.tile(seeds, len(idx)),
-                            target=ws.target, max_rounds=job.budget.max_rounds, x0=ws.x0, params=params,
-                            max_bits_per_worker=job.budget.max_bits_per_worker,
-                            stall_window=stall_window(first.method, params.get("sync_probability")),
-                            loss_ref=ws.loss_ref))
-    jobs = job.search.jobs if jobs is None else jobs
-    for idx, runs in zip(groups.values(), simulate_many(ws.problem, batches, jobs=jobs)):
-        for j, i in enumerate(idx):
-            out[i] = Evaluation(candidates[i], runs[j * S:(j + 1) * S], network)
+        out.append((idx, dict(method=first.method, compressor=comp, step_size=steps,
+                              seeds=np.tile(seeds, len(idx)), target=ws.target, max_rounds=job.budget.max_rounds,
+                              x0=ws.x0, params=params, max_bits_per_worker=job.budget.max_bits_per_worker,
+                              stall_window=stall_window(first.method, params.get("sync_probability")),
+                              loss_ref=ws.loss_ref)))
     return out
+
+
+def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None) -> list[Evaluation]:
+    """Run each candidate on ``seeds``; candidates of one method and compressor share a batch."""
+    return start_evaluate(ws, candidates, seeds, network, jobs=1)()
+
+
+def start_evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, *, jobs: int):
+    """:func:`evaluate` started in another process when ``jobs`` > 1 (:func:`bittune.parallel.start_batch`);
+    returns a function that waits for the evaluations and returns them."""
+    pending = [(idx, start_batch(ws.problem, kwargs, jobs=jobs)) for idx, kwargs in _batches(ws, candidates, seeds)]
+    S = len(seeds)
+
+    def result() -> list[Evaluation]:
+        out: list[Evaluation | None] = [None] * len(candidates)
+        for idx, wait in pending:
+            runs = wait()
+            for j, i in enumerate(idx):
+                out[i] = Evaluation(candidates[i], runs[j * S:(j + 1) * S], network)
+        return out
+
+    return result
+
+
+def _start_baseline(ws, space: Space, method: str, seeds: list[int], network):
+    """The theory setting of ``method`` at its cheapest predicted density, started (see start_evaluate)."""
+    cand = space.candidate(method, space.theory_density(method))
+    return start_evaluate(ws, [cand], seeds, network, jobs=ws.job.search.jobs)
 
 
 def finalists(study, space: Space, *, count: int) -> list[Candidate]:
@@ -169,28 +185,22 @@ def select(ws, space: Space, study, network=None) -> Selection:
         from .errors import BittuneError
 
         raise BittuneError("no trial completed: nothing to validate (see the trials' failed_reason)")
-    # The theory baseline runs beside the finalists when they share one method (it is often the
-    # slowest batch: a timid step runs to the round budget), else beside the back-off steps.
+    # The theory baseline needs only the method: with --jobs > 1 it runs in another process
+    # beside the finalists (one method among them) or beside the back-off steps.
     methods = {c.method for c in cands}
-    early = None
+    pending_baseline = None
     if len(methods) == 1:
-        (method,) = methods
-        early = space.candidate(method, space.theory_density(method))
-    first = evaluate(ws, cands + ([early] if early else []), seeds, network)
-    evals, baseline = (first[:-1], first[-1]) if early else (first, None)
+        pending_baseline = _start_baseline(ws, space, next(iter(methods)), seeds, network)
+    evals = evaluate(ws, cands, seeds, network)
     ok = [e for e in evals if e.all_reached]
     winner = min(ok, key=lambda e: e.mean_cost) if ok else min(
         evals, key=lambda e: (-sum(r.reached for r in e.runs), e.mean_cost))
-    steps = []
+    if pending_baseline is None:
+        pending_baseline = _start_baseline(ws, space, winner.candidate.method, seeds, network)
+    backoff: list[Evaluation] = []
     if winner.all_reached and spec.backoff_steps > 0:
         steps = [winner.candidate.step_size / spec.backoff_factor ** j for j in range(1, spec.backoff_steps + 1)]
-    late = [] if baseline else [space.candidate(winner.candidate.method,
-                                                space.theory_density(winner.candidate.method))]
-    more = evaluate(ws, [winner.candidate.with_step(s) for s in steps] + late, seeds, network) if steps or late else []
-    backoff = more[: len(steps)]
-    if late:
-        baseline = more[-1]
-    if backoff:
+        backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds, network)
         limit = winner.mean_cost * (1.0 + spec.backoff_tolerance)
         chosen = winner
         for e in backoff:
@@ -198,4 +208,5 @@ def select(ws, space: Space, study, network=None) -> Selection:
                 break
             chosen = e
         winner = chosen
+    baseline = pending_baseline()[0]
     return Selection(winner=winner, baseline=baseline, finalists=evals, backoff=backoff, seeds=seeds)

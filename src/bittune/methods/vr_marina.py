@@ -63,7 +63,8 @@ class VRMARINA(Method):
         b = np.broadcast_to(np.asarray(default_minibatch(sizes) if b is None else b, dtype=np.float64),
                             (self._batch,)).copy()
         if not np.all((b == np.floor(b)) & (b >= 1)):
-            raise ValueError(f"{self.name}: parameter 'minibatch' must be integers >= 1, got {self._given.get('minibatch')!r}")
+            raise ValueError(f"{self.name}: parameter 'minibatch' must be integers >= 1, "
+                             f"got {self._given.get('minibatch')!r}")
         p = self._given.get("sync_probability")
         if p is None:
             c = self.compressor
@@ -87,7 +88,8 @@ class VRMARINA(Method):
         # the min guards the rounding of m_i u.
         # Shape (slots, n): element s*n + i does not depend on how many slots the batch needs.
         u = uniform(keys, round_, STREAM["minibatch"], (slots, n)).transpose(0, 2, 1)
-        rows = np.minimum((u * self._sizes[None, :, None]).astype(np.int64), (self._sizes - 1).astype(np.int64)[None, :, None])
+        last = (self._sizes - 1).astype(np.int64)[None, :, None]
+        rows = np.minimum((u * self._sizes[None, :, None]).astype(np.int64), last)
         live = np.arange(slots)[None, None, :] < b[:, None, None]
         W = np.zeros((B, n, self._m_max))
         bi = np.broadcast_to(np.arange(B)[:, None, None], rows.shape)

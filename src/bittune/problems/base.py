@@ -32,6 +32,8 @@ class Problem(ABC):
     name: str = ""
     #: True when :meth:`weighted_grads` (per-sample gradients for minibatches) is available.
     has_samples: bool = True
+    #: True when the problem can be pickled into a worker process (bittune.parallel).
+    portable: bool = True
     #: Sign folded into the per-worker scale 1/m_i of the backward pass, so that
     #: ``_residual_weights`` can skip a negation pass.
     _weight_sign: float = 1.0

@@ -134,6 +134,8 @@ class PluginProblem:
     name = "plugin"
     #: The user's function gives whole-worker losses only: no minibatch oracle (VR-MARINA).
     has_samples = False
+    #: The user's code is imported from a file path: a worker process may not import it again.
+    portable = False
 
     def __init__(
         self,
