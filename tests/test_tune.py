@@ -20,7 +20,7 @@ from bittune.cli import main
 from bittune.errors import InputError
 from bittune.search import open_storage
 from bittune.tune import study_name, tune
-from conftest import Quiet
+from conftest import Quiet, breast_cancer_problem
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -255,3 +255,33 @@ def test_a_numerical_fault_fails_one_trial_not_the_study(frost, tmp_path, monkey
     assert len(failed) == 1 and "overflow" in failed[0].user_attrs["failed_reason"]
     assert sum(t.state in (TrialState.COMPLETE, TrialState.PRUNED) for t in trials) == 10
     assert result.exit_code == 0
+
+
+def test_a_miss_before_any_reach_still_scores_above_every_reach(cancer):
+    """With parallel trials, a diverging trial can finish before any trial has reached the target
+    (no cost cap yet). Its penalty must still exceed what any reach within the budget costs, or a
+    diverged setting becomes a finalist (seen with --jobs 2 on a ridge problem)."""
+    from types import SimpleNamespace
+
+    from bittune.compressors import make_compressor
+    from bittune.search import Objective, score
+    from bittune.simulate import absolute_target, simulate
+
+    _, L = cancer.smoothness_bounds()
+    d, rounds = cancer.dim, 300
+    target = absolute_target(cancer, np.zeros(d), grad_norm_sq=1e-4, relative=True)
+    obj = Objective(problem=cancer, space=SimpleNamespace(), x0=np.zeros(d), target=target, max_rounds=rounds,
+                    max_bits=None, seeds=[0])
+    floor = obj._most_a_reach_costs()
+    # The dearest message: Top-K with K = d (an index beside every value), every round of the budget.
+    dear = simulate(cancer, method="ef21", compressor=make_compressor(f"top_k:{d}", d), step_size=1e-9 / L,
+                    seeds=[0], target=0.0, max_rounds=rounds)[0]
+    assert dear.uplink_bits <= floor
+    # Least squares truly diverges at a large step (logistic gradients are bounded).
+    ls = breast_cancer_problem(model="least_squares", reg=0.0)
+    _, L2 = ls.smoothness_bounds()
+    diverged = simulate(ls, method="gd", compressor=make_compressor("identity", d), step_size=3.0 / L2,
+                        seeds=[0], target=target, max_rounds=rounds)
+    assert diverged[0].status == "diverged"
+    value, _ = score(diverged, target=target, cap=floor)
+    assert value > floor >= dear.uplink_bits

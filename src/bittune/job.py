@@ -26,7 +26,7 @@ from bittune.errors import InputError
 __all__ = [
     "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "NetworkSpec",
     "AssumeSpec", "Job",
-    "load_job", "parse_job", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
+    "load_job", "parse_job", "data_digest", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
 ]
 
 MODELS = ("logistic_nonconvex", "least_squares", "softmax", "mlp", "plugin")
@@ -254,6 +254,11 @@ _USED_ONLY_IF = {
     **{f"network.{k}": (lambda v: v[""].get("objective") == "seconds", "objective is seconds")
        for k in ("latency", "uplink_bandwidth", "downlink_bandwidth", "compute_seconds")},
 }
+
+
+def data_digest(job: Job) -> str:
+    """sha256 of the job's data file (provenance, study names, a stored f_ref's validity)."""
+    return hashlib.sha256(Path(job.data.path).read_bytes()).hexdigest()
 
 
 def load_job(path: str | os.PathLike) -> Job:

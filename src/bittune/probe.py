@@ -178,13 +178,21 @@ def _check(oracle, pts, grads, losses, *, rng, directions, threshold, start, cal
                          seconds=time.perf_counter() - start)
 
 
-def _hvp(oracle, pts: np.ndarray, h: np.ndarray, dirs: np.ndarray) -> np.ndarray:
-    """H_i(x_p) dirs[s, p, i] for every stage s, point p, worker i: (S, P, n, d), one call."""
+def _hvp(oracle, pts: np.ndarray, h: np.ndarray, dirs: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
+    """H_i(x_p) dirs[s, p, i] for every stage s, point p, worker i: (S, P, n, d), one call.
+
+    With ``weights`` (S, P, n, m_max) the Hessian is that of sum_j w_j f_ij (the minibatch
+    oracle ``weighted_grads``) instead of f_i's.
+    """
     S, P, n, d = dirs.shape
     unit, norm = _unit(dirs, axis=3)  # worker i moves along its own unit direction
     shift = h[None, :, None, None] * unit
-    X = pts[None, :, None, :] + np.stack([shift, -shift])  # (2, S, P, n, d)
-    G, _ = oracle.local_grads(X.reshape(-1, n, d))
+    X = (pts[None, :, None, :] + np.stack([shift, -shift])).reshape(-1, n, d)  # (2, S, P, n, d) flat
+    if weights is None:
+        G, _ = oracle.local_grads(X)
+    else:
+        W = weights.reshape(-1, n, weights.shape[-1])
+        G = oracle.weighted_grads(X, np.concatenate([W, W]))
     G = G.reshape(2, S, P, n, d)
     return (G[0] - G[1]) / (2.0 * h[None, :, None, None]) * norm
 
@@ -263,13 +271,8 @@ def _sample_smoothness(problem, pts: np.ndarray, *, iters: int, draws: int, rng)
         draws per oracle call."""
         out = np.empty_like(dirs)
         for a in range(0, dirs.shape[0], chunk):
-            unit, norm = _unit(dirs[a : a + chunk], axis=3)
-            shift = h[None, :, None, None] * unit
-            X = pts[None, :, None, :] + np.stack([shift, -shift])  # (2, r, P, n, d)
-            Sa = signs(seed, a, unit.shape[0])
-            W = np.concatenate([Sa, Sa]).reshape(-1, n, m_max)
-            G = problem.weighted_grads(X.reshape(-1, n, d), W).reshape(2, *unit.shape)
-            out[a : a + chunk] = (G[0] - G[1]) / (2.0 * h[None, :, None, None]) * norm
+            part = dirs[a : a + chunk]
+            out[a : a + chunk] = _hvp(problem, pts, h, part, weights=signs(seed, a, part.shape[0]))
         return out
 
     v = np.broadcast_to(_unit(rng.standard_normal((P, n, d)), 2)[0], (draws, P, n, d))  # shared by the draws

@@ -8,14 +8,13 @@ computes it again on the job's data.
 
 from __future__ import annotations
 
-import hashlib
 import math
 
 import numpy as np
 
 from .compressors import make_compressor
 from .config import Config, check_config_fits
-from .job import Job
+from .job import Job, data_digest
 from .simulate import Trajectory, simulate
 from .search import SYNCED
 from .workspace import Workspace
@@ -54,7 +53,7 @@ def stored_reference(cfg: Config, job: Job) -> dict | None:
     if prov.get("job_sha256") != job.digest:
         return None
     try:
-        data = hashlib.sha256(job.data.path.read_bytes()).hexdigest()
+        data = data_digest(job)
     except OSError:
         return None
     return dict(ref) if prov.get("data_sha256") == data else None

@@ -365,7 +365,10 @@ class Objective:
                         seeds=self.seeds, target=self.target, max_rounds=self.max_rounds, x0=self.x0,
                         params=cand.params(), max_bits_per_worker=bits_cap, stall_window=window,
                         monitor=monitor, loss_ref=self.loss_ref)
-        value, per_seed = score(runs, target=self.target, cap=cap, cost=cost_function(self.network))
+        # Before any trial has reached the target there is no cap; a miss must still score above
+        # every possible reach, so its penalty starts from the most a reach could cost.
+        floor = cap if cap is not None else self._most_a_reach_costs()
+        value, per_seed = score(runs, target=self.target, cap=floor, cost=cost_function(self.network))
         if self.network is not None:
             trial.set_user_attr("seconds", [float(self.network.seconds(r)) for r in runs])
         trial.set_user_attr("status", [r.status for r in runs])
@@ -377,6 +380,22 @@ class Objective:
         if monitor.pruned:
             raise optuna.TrialPruned(f"pruned at {monitor.step} bit checkpoints")
         return value
+
+    def _most_a_reach_costs(self) -> float:
+        """An upper bound on the cost of any trajectory that reaches the target within the round budget.
+
+        No message of our compressors exceeds d (33 + ceil(log2 d)) bits (a value and an index per
+        coordinate, plus a norm), and no method computes more than two full gradients a round
+        (VR-MARINA: 2 b' <= 2 m_i).
+        """
+        d = self.problem.dim
+        bits = (self.max_rounds + 1) * d * (33 + math.ceil(math.log2(max(d, 2))))
+        if self.network is None:
+            return float(bits)
+        net = self.network
+        rounds = self.max_rounds + 1
+        return float(rounds * (2.0 * net.compute_seconds + net.latency + 32.0 * d / net.downlink_bandwidth)
+                     + bits / net.uplink_bandwidth)
 
     def _cap(self, study: optuna.Study) -> float | None:
         """Cost cap: bits_cap_factor x the best all-seeds-reached value so far (and the job's bit cap,

@@ -10,7 +10,6 @@ restarted with the same run directory resumes from that storage.
 from __future__ import annotations
 
 import datetime as _dt
-import hashlib
 import math
 import sys
 import threading
@@ -25,7 +24,7 @@ from optuna.trial import TrialState
 from . import __version__
 from .config import write_config
 from .errors import EXIT, InputError
-from .job import Job, load_job
+from .job import Job, data_digest, load_job
 from .probe import probe_workspace
 from .report import write_report
 from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials, mask_url, open_storage,
@@ -45,11 +44,6 @@ class TuneResult:
     storage: str
     trials: dict
     report: dict | None = None  # paths written by the report
-
-
-def data_digest(job: Job) -> str:
-    """sha256 of the job's data file."""
-    return hashlib.sha256(Path(job.data.path).read_bytes()).hexdigest()
 
 
 def study_name(job: Job) -> str:

@@ -108,9 +108,4 @@ class VRMARINA(Method):
         return g.copy(), bits
 
     def gradient_evals(self):
-        return self._evals
-
-    def keep(self, index: np.ndarray) -> None:
-        super().keep(index)
-        if self._evals is not None:
-            self._evals = self._evals[index]
+        return self._evals  # of the last direction() call, read by the engine right after it
