@@ -119,11 +119,9 @@ def _batches(ws, candidates: list[Candidate], seeds: list[int]) -> list[tuple[li
     for idx in groups.values():
         first = candidates[idx[0]]
         steps = np.repeat([candidates[i].step_size for i in idx], S)
-        params = {}
-        for key in ("sync_probability", "shift_rate", "clients", "minibatch"):
-            vals = [getattr(candidates[i], key) for i in idx]
-            if vals[0] is not None:
-                params[key] = np.repeat(vals, S)
+        # Candidate.params() names each method parameter once; one value per trajectory.
+        each = [candidates[i].params() for i in idx]
+        params = {key: np.repeat([p[key] for p in each], S) for key in each[0]}
         comp = make_compressor(first.compressor, ws.problem.dim, n_workers=ws.problem.n_workers)
         out.append((idx, dict(method=first.method, compressor=comp, step_size=steps,
                               seeds=np.tile(seeds, len(idx)), target=ws.target, max_rounds=job.budget.max_rounds,
