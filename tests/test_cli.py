@@ -114,12 +114,12 @@ def test_probe_json_has_the_documented_keys_and_matches_the_bounds(demo, capsys,
         assert key in s
     assert doc["gradient_check"]["passed"] is True
     assert doc["gradient_check"]["max_rel_error"] < 1e-5
-    # THEORY.md 3.2: for logistic + non-convex regulariser the closed form is an
+    # docs/theory.md §3.2: for logistic + non-convex regulariser the closed form is an
     # upper bound, attained at x = 0 (the demo's start): estimates within 1%.
     b = doc["closed_form_bounds"]
     assert s["L"] <= b["L"] * 1.01 and s["L"] >= b["L"] * 0.99
     np.testing.assert_allclose(s["L_workers"], b["L_workers"], rtol=1e-2)
-    # Chain L_- <= L_+ <= L_qm (THEORY.md 3.1), with 1e-6 slack for estimation rounding.
+    # Chain L_- <= L_+ <= L_qm (docs/theory.md §3.1), with 1e-6 slack for estimation rounding.
     assert s["L"] <= s["L_plus"] * (1 + 1e-6) and s["L_plus"] <= s["L_qm"] * (1 + 1e-6)
     import yaml
 

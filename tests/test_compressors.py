@@ -1,6 +1,6 @@
-"""Conformance suite: every compressor passes the same checks (STYLE.md, "one conformance suite").
+"""Conformance suite: every compressor passes the same checks (DEVELOPERS.md, "Code habits": one conformance suite).
 
-Reference values are the published constants (THEORY.md 1.2), recomputed here
+Reference values are the published constants (docs/theory.md §1.2), recomputed here
 independently of the module; each check names its source.
 
 Statistical checks: every assertion has a false-alarm rate of at most 1e-6
@@ -50,13 +50,13 @@ def z_two(m: int) -> float:
 
 
 def published(label: str, d: int, n: int = N) -> dict:
-    """Constants of THEORY.md 1.2, written out here (not read from the module)."""
+    """Constants of docs/theory.md §1.2, written out here (not read from the module)."""
     name, _, arg = label.partition(":")
     b_ix = math.ceil(math.log2(d))
     if name == "perm_k":  # Szlendak et al. 2022 (from memory): U(n-1), d/n floats (d >= n); U(d-1), 1 float
         omega, density = (n - 1, d / n) if d >= n else (d - 1, 1.0)
         return dict(unbiased=True, omega=omega, alpha=1 / (1 + omega), density=density, bits=32 * density)
-    if name == "natural_dither":  # Horvath et al. 2019, published omega (from memory); bits THEORY.md 1.2
+    if name == "natural_dither":  # Horvath et al. 2019, published omega (from memory); bits docs/theory.md §1.2
         s = int(arg)
         t = 2.0 ** (1 - s)
         omega = 1 / 8 + math.sqrt(d) * t * min(1, math.sqrt(d) * t)
@@ -73,7 +73,7 @@ def published(label: str, d: int, n: int = N) -> dict:
         return dict(unbiased=True, omega=omega, alpha=1 / (1 + omega), density=p, bits=32 * p)
     if name == "top_k":  # alpha = K/d (Stich, Cordonnier, Jaggi 2018); data-dependent indices
         return dict(unbiased=False, omega=math.inf, alpha=p / d, density=p, bits=p * (32 + b_ix))
-    # dither: Alistarh et al. 2017 (QSGD), Lemma 3.1 (i) and (iii); bit model THEORY.md 1.2
+    # dither: Alistarh et al. 2017 (QSGD), Lemma 3.1 (i) and (iii); bit model docs/theory.md §1.2
     omega = min(d / p**2, math.sqrt(d) / p)
     density = min(d, p * (p + math.sqrt(d)))
     dense = d * (1 + math.ceil(math.log2(p + 1)))
@@ -82,7 +82,7 @@ def published(label: str, d: int, n: int = N) -> dict:
 
 
 def dither_bits(nnz: np.ndarray, d: int, s: int) -> np.ndarray:
-    """THEORY.md 1.2: 32 (norm) + 1 (flag) + min(dense fixed width, sparse)."""
+    """docs/theory.md §1.2: 32 (norm) + 1 (flag) + min(dense fixed width, sparse)."""
     dense = d * (1 + math.ceil(math.log2(s + 1)))
     return 33 + np.minimum(dense, nnz * (1 + math.ceil(math.log2(d)) + math.ceil(math.log2(s))))
 
@@ -170,14 +170,14 @@ def test_workers_independent_of_each_others_data(label):
     np.testing.assert_array_equal(out[0, 0], 0.0)  # zero in, zero out
     np.testing.assert_array_equal(out[1, :2], ref[1, :2])
     np.testing.assert_array_equal(bits[1, :2], ref_bits[1, :2])
-    if name_of(label) == "dither":  # zero message: norm + flag only (THEORY.md 1.2)
+    if name_of(label) == "dither":  # zero message: norm + flag only (docs/theory.md §1.2)
         assert bits[0, 0] == 33.0
 
 
 @pytest.mark.parametrize("label", SETTINGS)
 def test_scale_equivariance_without_overflow(label):
     """Q(2^900 x) = 2^900 Q(x) exactly with the same random numbers (every definition
-    in THEORY.md 1.2 is positively homogeneous; powers of two scale floats exactly).
+    in docs/theory.md §1.2 is positively homogeneous; powers of two scale floats exactly).
     Catches a norm computed as sqrt(sum x^2), which overflows here."""
     c = build(label)
     v = block(5)
@@ -314,7 +314,7 @@ def exact_coordinate_variance(label: str, x: np.ndarray) -> np.ndarray:
         return (x @ x) * (u - low) * (high - u)
     if name == "rand_k":  # (d/K) x_j with probability K/d, else 0
         return x**2 * (D / int(arg) - 1)
-    if name == "dither":  # (||x||/s)^2 (u - l)(l + 1 - u), THEORY.md 1.2 derivation notes
+    if name == "dither":  # (||x||/s)^2 (u - l)(l + 1 - u), docs/theory.md §1.2 derivation notes
         s = int(arg)
         u = s * np.abs(x) / np.linalg.norm(x)
         low = np.floor(u)
@@ -346,10 +346,10 @@ def test_variance_within_omega(label):
     assert mean <= want + Z_ONE * se + 1e-12
     if name_of(label) != "natural":
         exact = exact_variance_ratio(label, mc["x"])
-        # Rand-K: omega = d/K - 1, PermK: omega = n - 1, with equality for every x (THEORY.md 1.2)
+        # Rand-K: omega = d/K - 1, PermK: omega = n - 1, with equality for every x (docs/theory.md §1.2)
         if name_of(label) in ("rand_k", "perm_k"):
             assert exact == pytest.approx(want, rel=1e-12)
-        # dithering: sharper derived bound min(d/(4 s^2), sqrt(d)/s) (THEORY.md 1.2, DER)
+        # dithering: sharper derived bound min(d/(4 s^2), sqrt(d)/s) (docs/theory.md §1.2, DER)
         if label.startswith("dither"):
             s = int(label.partition(":")[2])
             assert exact <= min(D / (4 * s**2), math.sqrt(D) / s)
@@ -359,9 +359,9 @@ def test_variance_within_omega(label):
 @pytest.mark.parametrize("label", UNBIASED)
 def test_workers_draw_independently(label):
     """Independent Q_i in U(omega): E||mean_i Q_i(x) - x||^2 = (1/n) E||Q(x) - x||^2
-    (THEORY.md 1.1, A = omega/n). Shared draws across workers would give n times more.
+    (docs/theory.md §1.1, A = omega/n). Shared draws across workers would give n times more.
     PermK is correlated on purpose: with one x for all workers, the kept sets partition
-    the coordinates and the mean is x itself (AB identity with a_i = x: 0, THEORY.md 1.2)."""
+    the coordinates and the mean is x itself (AB identity with a_i = x: 0, docs/theory.md §1.2)."""
     mc = monte_carlo(label)
     mean, se = mc["avg_ratio"]
     if label == "perm_k":
@@ -375,7 +375,7 @@ def test_workers_draw_independently(label):
 
 
 def test_natural_worst_case_attains_one_eighth():
-    """|x_j| = (4/3) 2^k: P(up) = 1/3, Var = 4^k (2/9) = x_j^2 / 8 (THEORY.md 1.2, DER)."""
+    """|x_j| = (4/3) 2^k: P(up) = 1/3, Var = 4^k (2/9) = x_j^2 / 8 (docs/theory.md §1.2, DER)."""
     mc = monte_carlo("natural", "worst_natural")
     mean, se = mc["ratio"]
     assert abs(mean - 1 / 8) <= z_two(1) * se
@@ -397,7 +397,7 @@ def test_dither_mean_nnz(label):
 @pytest.mark.parametrize("label", ["natural_dither:1", "natural_dither:3"])
 def test_natural_dither_mean_nnz(label):
     """E nnz = #{u_j >= 2^(1-s)} + sum over the others of u_j / 2^(1-s) (rounded up to the
-    smallest level with that probability), <= min(d, 2^(s-1)(2^(s-1) + sqrt d)) (THEORY.md 1.2)."""
+    smallest level with that probability), <= min(d, 2^(s-1)(2^(s-1) + sqrt d)) (docs/theory.md §1.2)."""
     mc = monte_carlo(label)
     mean, se = mc["nnz"]
     s = int(label.partition(":")[2])
@@ -487,8 +487,8 @@ PERM_CASES = [(12, 3), (13, 3), (5, 5), (3, 6), (3, 7)]
 
 
 def perm_ab(d: int, n: int) -> tuple[float, float]:
-    """AB constants of PermK, written out here. d >= n: A = B = 1 (THEORY.md 1.2, DER + MC);
-    d < n with d | n: A = B = (d-1)/(n-1) (THEORY.md 1.2, DER + MC); d < n otherwise: pad the
+    """AB constants of PermK, written out here. d >= n: A = B = 1 (docs/theory.md §1.2, DER + MC);
+    d < n with d | n: A = B = (d-1)/(n-1) (docs/theory.md §1.2, DER + MC); d < n otherwise: pad the
     workers to n' = d ceil(n/d) with zero vectors, apply the d | n' identity to them and rescale
     by n'/n: B = (d-1)/(n'-1), A = B n'/n (derived here, checked by the Monte Carlo below)."""
     if d >= n:
@@ -509,7 +509,7 @@ def perm_draws(d: int, n: int, a: np.ndarray, *, keys: int, rounds: int) -> np.n
 @pytest.mark.parametrize("d,n", PERM_CASES)
 def test_perm_k_ab_identity(d, n):
     """E||(1/n) sum_i C_i(a_i) - abar||^2 = A (1/n) sum_i ||a_i||^2 - B ||abar||^2 with equality
-    (Szlendak, Tyurin, Richtarik 2022; THEORY.md 1.2). Two-sided z-test with the sample
+    (Szlendak, Tyurin, Richtarik 2022; docs/theory.md §1.2). Two-sided z-test with the sample
     standard error of 2e4 draws, false alarm 1e-6 per case (z = 4.9)."""
     c = build("perm_k", d, n)
     A, B = perm_ab(d, n)
@@ -529,7 +529,7 @@ def test_perm_k_ab_identity(d, n):
 def test_perm_k_each_worker_unbiased_with_omega_equality(d, n):
     """E C_i(x) = x for every worker (z-test per coordinate and worker with the exact variance
     (s - 1) x_j^2, s = n or d the scale; Bonferroni over n d), and E||C_i(x) - x||^2 =
-    omega ||x||^2 with omega = s - 1 (THEORY.md 1.2: U(n-1), or U(d-1) when n >= d)."""
+    omega ||x||^2 with omega = s - 1 (docs/theory.md §1.2: U(n-1), or U(d-1) when n >= d)."""
     c = build("perm_k", d, n)
     scale = n if d >= n else d
     assert c.omega == scale - 1 and c.unbiased

@@ -1,4 +1,4 @@
-"""One suite that every method passes (STYLE.md: conformance suites)."""
+"""One suite that every method passes (DEVELOPERS.md, "Code habits": conformance suites)."""
 
 from __future__ import annotations
 
@@ -176,10 +176,10 @@ def _pp_step(*, d, n, r, spec, batch, seed):
 
 @pytest.mark.parametrize("r", [1, 3, 5])
 def test_pp_marina_estimator_is_unbiased_with_the_theory_variance(r):
-    """THEORY.md 2.6 (Gorbunov et al. 2021, PP-MARINA; derivation there): with r clients drawn
+    """docs/theory.md §2.6 (Gorbunov et al. 2021, PP-MARINA; derivation there): with r clients drawn
     i.i.d. uniformly and independent draws of Q, E[g^{k+1} - g^k] = Dbar and
     E||g^{k+1} - g^k - Dbar||^2 = (1/r) ((1/n) sum_i E||Q(D_i)||^2 - ||Dbar||^2); for Rand-K
-    E||Q(D)||^2 = (d/K) ||D||^2 exactly (THEORY.md 1.2). A client drawn twice must compress
+    E||Q(D)||^2 = (d/K) ||D||^2 exactly (docs/theory.md §1.2). A client drawn twice must compress
     twice: re-sending one draw would add (r-1)/(r n) omega mean_i ||D_i||^2.
     z-tests at false-alarm 1e-6 (Bonferroni over d for the mean), sample standard errors."""
     d, n, k, batch = 6, 5, 2, 20_000
@@ -203,7 +203,7 @@ def test_pp_marina_defaults_and_errors():
     comp = make_compressor("rand_k:4", 20)
     m = make_method("pp_marina", compressor=comp, n_workers=5, dim=20, batch=2)
     np.testing.assert_array_equal(m.p["clients"], [5, 5])  # r = n
-    # p = zeta r/(d n) (THEORY.md 2.6, Gorbunov et al. 2021, from memory): 4 * 5 / (20 * 5)
+    # p = zeta r/(d n) (docs/theory.md §2.6, Gorbunov et al. 2021, from memory): 4 * 5 / (20 * 5)
     np.testing.assert_allclose(m.p["sync_probability"], [0.2, 0.2], rtol=1e-15)
     m = make_method("pp_marina", compressor=comp, n_workers=5, dim=20, batch=2, clients=[1, 2])
     np.testing.assert_allclose(m.p["sync_probability"], [0.04, 0.08], rtol=1e-15)

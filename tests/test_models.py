@@ -118,10 +118,10 @@ def test_gradient_matches_check_grad_and_central_differences_shared_points(model
             f = lambda z, i=i: problem.local_losses(z[None])[0, i]  # noqa: E731
             g = lambda z, i=i: problem.local_grads(z[None])[0][0, i]  # noqa: E731
             # scipy.optimize.check_grad: forward differences with h = sqrt(eps), error
-            # O(sqrt(eps)) times the curvature (Nocedal & Wright ch. 8; THEORY.md 3.3).
+            # O(sqrt(eps)) times the curvature (Nocedal & Wright ch. 8; docs/theory.md §3.3).
             assert check_grad(f, g, x) < 1e-5 * max(1.0, np.linalg.norm(G[b, i]))
             # Central differences with h = eps^(1/3): error ~ eps^(2/3) ~ 4e-11 times the
-            # scale of f (THEORY.md 3.3); 1e-6 leaves room for the third derivative.
+            # scale of f (docs/theory.md §3.3); 1e-6 leaves room for the third derivative.
             np.testing.assert_allclose(G[b, i], fd[i], rtol=1e-6, atol=1e-8)
 
 

@@ -64,7 +64,7 @@ def test_evaluations_started_elsewhere_equal_those_run_here(cancer):
 
 def test_theory_baseline_shares_a_batch_with_the_finalists(cancer):
     """Candidates of one method and compressor share a batch: every one must carry its integer
-    parameters (PP-MARINA's r = n by default, THEORY.md 2.6), or the batch mixes numbers with None."""
+    parameters (PP-MARINA's r = n by default, docs/theory.md §2.6), or the batch mixes numbers with None."""
     space, spec = _space(cancer, ["pp_marina"])
     base = space.candidate("pp_marina", {"name": "rand_k", "k": 5})
     assert base.clients == cancer.n_workers

@@ -59,7 +59,7 @@ def test_gd_pl_prediction_bounds_the_rounds_of_gd():
 
 
 def test_marina_and_ef21_pl_steps_are_the_published_forms():
-    """THEORY.md 2.7 (MARINA under PL; Gorbunov et al. 2021, from memory) and 2.9 (EF21 Thm 2,
+    """docs/theory.md §2.7 (MARINA under PL; Gorbunov et al. 2021, from memory) and §2.9 (EF21 Thm 2,
     Richtarik et al. 2021, from memory)."""
     _, c, _ = _ridge()
     d, n, mu = c.dim, c.n_workers, c.pl_mu
@@ -79,13 +79,13 @@ def test_marina_and_ef21_pl_steps_are_the_published_forms():
     # A large mu makes the p/(2 mu) cap bind: the step is the cap exactly.
     big = Constants(**{**c.__dict__, "pl_mu": c.L})
     assert theory_point("marina", comp, big, target=1e-6).step_size == pytest.approx(p / (2 * c.L), rel=1e-15)
-    # DIANA has no PL rule (THEORY.md): its point is the non-convex one.
+    # DIANA has no PL rule (docs/theory.md §2.3): its point is the non-convex one.
     plain = Constants(**{**c.__dict__, "pl_mu": None})
     assert theory_point("diana", comp, c, target=1e-6) == theory_point("diana", comp, plain, target=1e-6)
 
 
 def test_marina_pl_rate_holds_on_average_over_seeds():
-    """E[f(x^K) - f*] <= (1 - gamma mu)^K Delta0 (THEORY.md 2.7), checked on the mean gap over
+    """E[f(x^K) - f*] <= (1 - gamma mu)^K Delta0 (docs/theory.md §2.7), checked on the mean gap over
     200 seeds at K rounds; the bound is on the expectation, so the sample mean may exceed it
     by sampling noise: 5 standard errors of margin (common practice, no source)."""
     prob, c, f_star = _ridge(seed=3)

@@ -66,7 +66,7 @@ def _quadratic(seed, spectra, *, shared_basis=False):
 
 
 def _closed_forms(H):
-    """THEORY.md 3.1 for quadratics, with numpy.linalg.eigvalsh: L_i, L, L_+, L_pm."""
+    """docs/theory.md §3.1 for quadratics, with numpy.linalg.eigvalsh: L_i, L, L_+, L_pm."""
     Hbar = H.mean(axis=0)
     M = np.mean(H @ H, axis=0)
     return {
@@ -94,7 +94,7 @@ def _contraction(S):
 
 
 def _secant_maxima(problem, points):
-    """All-pairs secant ratios (THEORY.md 3.3), computed here independently of the probe."""
+    """All-pairs secant ratios (docs/theory.md §3.3), computed here independently of the probe."""
     G, _ = problem.local_grads(points)
     out = {"L_workers": np.zeros(problem.n_workers), "L": 0.0, "L_plus": 0.0, "L_pm": 0.0}
     for p in range(len(points)):
@@ -113,7 +113,7 @@ def _secant_maxima(problem, points):
 
 
 def _logistic_hessians(rows, targets, reg, x):
-    """Per-worker Hessians of the logistic loss + lam sum x^2/(1+x^2) at x (THEORY.md 3.2)."""
+    """Per-worker Hessians of the logistic loss + lam sum x^2/(1+x^2) at x (docs/theory.md §3.2)."""
     out = []
     for A, b in zip(rows, targets):
         S = A * b[:, None]
@@ -124,7 +124,7 @@ def _logistic_hessians(rows, targets, reg, x):
 
 
 def _assert_chains(L, L_plus, L_pm, L_workers, *, rtol):
-    # THEORY.md 3.1 chains: L_- <= L_+ <= L_QM and L_+^2 - L_-^2 <= L_pm^2 <= L_+^2.
+    # docs/theory.md §3.1 chains: L_- <= L_+ <= L_QM and L_+^2 - L_-^2 <= L_pm^2 <= L_+^2.
     # They hold for the exact local values at each point (Weyl's inequality, and
     # lambda_max(mean H_i^2) <= mean ||H_i||^2), hence for their maxima over points.
     L_qm = np.sqrt(np.mean(np.square(L_workers)))
@@ -207,9 +207,9 @@ def test_quadratic_estimates_match_closed_forms(case):
     lower = None if case != "indefinite_mean" else -1e3
     c, report = estimate_constants(q, x0=np.ones(q.dim), rng=np.random.default_rng(31), power_iters=ITERS,
                                    lower_bound=lower)
-    # Within 1% of the closed forms of THEORY.md 3.1 (numpy.linalg.eigvalsh), as asked; the
+    # Within 1% of the closed forms of docs/theory.md §3.1 (numpy.linalg.eigvalsh), as asked; the
     # gap check above gives 1e-4 and central differences of a quadratic are exact up to
-    # rounding eps^(2/3) ~ 4e-11 relative (THEORY.md 3.3).
+    # rounding eps^(2/3) ~ 4e-11 relative (docs/theory.md §3.3).
     np.testing.assert_allclose(c.L_workers, exact["L_workers"], rtol=1e-2)
     for key in ("L", "L_plus", "L_pm"):
         np.testing.assert_allclose(getattr(c, key), exact[key], rtol=1e-2, err_msg=key)
@@ -223,11 +223,11 @@ def test_quadratic_estimates_match_closed_forms(case):
 
 
 def test_identical_workers_have_zero_hessian_variance():
-    # L_pm^2 = lambda_max(mean H_i^2 - Hbar^2) = 0 when every H_i is the same (THEORY.md 3.1).
+    # L_pm^2 = lambda_max(mean H_i^2 - Hbar^2) = 0 when every H_i is the same (docs/theory.md §3.1).
     H = _quadratic(7, [TOP * 2.0]).H
     q = Quadratic(np.repeat(H, 4, axis=0), np.random.default_rng(7).standard_normal((4, 8)))
     c, _ = estimate_constants(q, x0=np.zeros(8), rng=np.random.default_rng(32), power_iters=ITERS)
-    # Only rounding of the differences remains: ~eps^(2/3) * L = 1e-10 (THEORY.md 3.3).
+    # Only rounding of the differences remains: ~eps^(2/3) * L = 1e-10 (docs/theory.md §3.3).
     assert c.L_pm <= 1e-8 * c.L
     np.testing.assert_allclose([c.L, c.L_plus], [2.0, 2.0], rtol=1e-8)
 
@@ -236,7 +236,7 @@ def test_estimates_are_raised_to_secants():
     # Two identical workers, H = Q diag(100, 1, ..., 1) Q^T, x0 on the top eigenvector q1:
     # GD from x0 stays on the line through q1, so secants there equal 100 = L_i = L = L_+
     # exactly (H(x - y) = 100 (x - y)), while one power iteration from a random v gives
-    # ||H v|| < 100 (THEORY.md 3.3: secants are lower bounds, estimates must exceed them).
+    # ||H v|| < 100 (docs/theory.md §3.3: secants are lower bounds, estimates must exceed them).
     q1 = _quadratic(16, [[100.0] + [1.0] * 7])
     H = np.repeat(q1.H, 2, axis=0)
     top = np.linalg.eigh(H[0])[1][:, -1]
@@ -287,8 +287,8 @@ def test_logistic_local_estimates_match_exact_hessians():
         # estimate there, hence the maximum, has c^2 within 1e-6 (c1 >= 1e-4).
         values = [e["L_workers"][key] if isinstance(key, int) else e[key] for e in per_point]
         assert 1e4 * _contraction(S(Hs[int(np.argmax(values))])) ** (ITERS - 1) < 1e-6, key
-    # Exact local values from the closed-form Hessian (THEORY.md 3.2) and numpy.linalg.eigvalsh;
-    # the estimates are converged (gap check) and central HVPs err by ~1e-10 (THEORY.md 3.3).
+    # Exact local values from the closed-form Hessian (docs/theory.md §3.2) and numpy.linalg.eigvalsh;
+    # the estimates are converged (gap check) and central HVPs err by ~1e-10 (docs/theory.md §3.3).
     np.testing.assert_allclose(report.local["L_workers"], exact["L_workers"], rtol=1e-4)
     for key in ("L", "L_plus", "L_pm"):
         np.testing.assert_allclose(report.local[key], exact[key], rtol=1e-4, err_msg=key)
@@ -313,17 +313,17 @@ def test_logistic_estimates_between_secants_and_closed_form_bounds(case):
     c, report = estimate_constants(problem, x0=x0, rng=np.random.default_rng(35), power_iters=ITERS)
     per, L = problem.smoothness_bounds()
     qm = np.sqrt(np.mean(per**2))
-    # Closed-form bounds of THEORY.md 3.2 (x 1.01: estimation error is ~1e-10, the margin is generous).
+    # Closed-form bounds of docs/theory.md §3.2 (x 1.01: estimation error is ~1e-10, the margin is generous).
     assert np.all(c.L_workers <= per * 1.01)
     assert c.L <= L * 1.01
-    assert c.L_plus <= qm * 1.01 and c.L_pm <= qm * 1.01  # L_pm <= L_+ <= L_QM (THEORY.md 3.1)
-    # At least every secant ratio between probe points, recomputed here (THEORY.md 3.3).
+    assert c.L_plus <= qm * 1.01 and c.L_pm <= qm * 1.01  # L_pm <= L_+ <= L_QM (docs/theory.md §3.1)
+    # At least every secant ratio between probe points, recomputed here (docs/theory.md §3.3).
     sec = _secant_maxima(problem, report.points)
     assert np.all(c.L_workers >= sec["L_workers"])
     for key in ("L", "L_plus", "L_pm"):
         assert getattr(c, key) >= sec[key], key
     if not np.any(x0):
-        # The bound is attained at x = 0 (THEORY.md 3.2: s(1-s) = 1/4 and phi'' = 2 there),
+        # The bound is attained at x = 0 (docs/theory.md §3.2: s(1-s) = 1/4 and phi'' = 2 there),
         # and x0 = 0 is a probe point: the estimates reach it (power iteration converged).
         np.testing.assert_allclose(c.L_workers, per, rtol=1e-4)
         np.testing.assert_allclose(c.L, L, rtol=1e-4)
@@ -352,7 +352,7 @@ def test_model_without_bounds_uses_a_local_step():
     c, report = estimate_constants(problem, x0=np.zeros(problem.dim), rng=np.random.default_rng(37))
     assert report.step_source == "local estimate at x0"
     assert c.bound_L is None and c.bound_L_workers is None
-    # 1/(2 L_local(0)), and L_local(0) = the closed-form bound (attained at 0, THEORY.md 3.2).
+    # 1/(2 L_local(0)), and L_local(0) = the closed-form bound (attained at 0, docs/theory.md §3.2).
     # The quick estimate (10 iterations) is a lower bound on it, so the step is at least
     # 1/(2 max_i L_i) (minus central-difference error ~1e-10); from above, the gap check
     # gives c^2 within 1e4 * rate^9 < 0.04 (c1 >= 1e-4), i.e. c within 2%.

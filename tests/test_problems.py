@@ -28,7 +28,7 @@ def test_gradient_matches_central_differences_and_check_grad(model, sparse):
             # scipy.optimize.check_grad: forward differences with h = sqrt(eps),
             # error O(sqrt(eps)) ~ 1e-8 times the curvature (Nocedal & Wright ch. 8).
             assert check_grad(f, g, x) < 1e-5 * max(1.0, np.linalg.norm(grads[0, i]))
-            # Central differences, h = eps^(1/3): error ~ eps^(2/3) ~ 4e-11 (THEORY.md 3.3).
+            # Central differences, h = eps^(1/3): error ~ eps^(2/3) ~ 4e-11 (docs/theory.md §3.3).
             h = np.finfo(float).eps ** (1 / 3) * (1 + np.linalg.norm(x))
             E = np.eye(d) * h
             fd = np.array([(f(x + e) - f(x - e)) / (2 * h) for e in E])
@@ -99,7 +99,7 @@ def test_least_squares_smoothness_equals_top_singular_value(sparse):
     problem, rows, _ = random_problem(model="least_squares", sparse=sparse, seed=7, reg=0.2)
     per, pooled = problem.smoothness_bounds()
     dense_rows = [r.toarray() if sp.issparse(r) else r for r in rows]
-    # Reference: numpy.linalg.svd, sigma_max(A_i)^2/m_i + lam (THEORY.md 3.2).
+    # Reference: numpy.linalg.svd, sigma_max(A_i)^2/m_i + lam (docs/theory.md §3.2).
     ref = [np.linalg.svd(r, compute_uv=False)[0] ** 2 / r.shape[0] + 0.2 for r in dense_rows]
     np.testing.assert_allclose(per, ref, rtol=1e-10)
     H = np.mean([r.T @ r / r.shape[0] for r in dense_rows], axis=0) + 0.2 * np.eye(problem.dim)
@@ -107,7 +107,7 @@ def test_least_squares_smoothness_equals_top_singular_value(sparse):
 
 
 def test_logistic_bound_is_attained_at_zero():
-    """THEORY.md 3.2: the logistic Hessian bound A^T A/(4m) is attained at x = 0,
+    """docs/theory.md §3.2: the logistic Hessian bound A^T A/(4m) is attained at x = 0,
     and the regulariser's Hessian there is 2 lam I, so lambda_max(Hess f_i(0)) = L_i."""
     problem, rows, _ = random_problem(model="logistic_nonconvex", sparse=False, seed=8, reg=0.1)
     per, _ = problem.smoothness_bounds()

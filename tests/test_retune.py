@@ -95,7 +95,7 @@ def _trials_of(run_dir: Path):
 @pytest.mark.slow
 def test_rescaled_features_break_the_old_step_and_are_replaced(night0, tmp_path, capsys):
     folder, _ = night0
-    # Features x sqrt(10): L grows 10x (L is quadratic in the data scale, THEORY.md 3.2).
+    # Features x sqrt(10): L grows 10x (L is quadratic in the data scale, docs/theory.md §3.2).
     job = _job(tmp_path, _data(tmp_path, "night1.svm", "--scale", "3.16227766"))
     code = main(["retune", str(job), "--previous", str(folder / "prod.yaml"), "-o", str(tmp_path / "n.yaml"),
                  "--json"])

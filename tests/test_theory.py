@@ -1,7 +1,7 @@
 """Theory rules: closed forms from the papers, bounds checked by simulation, bit trade-offs.
 
 Formulas are re-computed here from the published statements as restated in
-THEORY.md (each check names its paper), not from bittune.theory's code.
+docs/theory.md (each check names its paper), not from bittune.theory's code.
 """
 
 from __future__ import annotations
@@ -26,7 +26,7 @@ from conftest import breast_cancer_problem
 
 
 def _hand_constants(*, L=2.0, L_workers=(1.0, 2.0, 3.0), L_plus=2.1, dim=10, delta0=1.5) -> Constants:
-    """n = 3, d = 10; L_- = 2 <= L_+ = 2.1 <= L_QM = sqrt(14/3) = 2.16 (THEORY.md 3.1 chain)."""
+    """n = 3, d = 10; L_- = 2 <= L_+ = 2.1 <= L_QM = sqrt(14/3) = 2.16 (docs/theory.md §3.1 chain)."""
     w = np.asarray(L_workers, dtype=np.float64)
     return Constants(n_workers=w.size, dim=dim, L=L, L_workers=w, L_plus=L_plus, L_pm=L_plus, delta0=delta0,
                      grad_sq0=1.0, local_grad_sq0=2.0, heterogeneity0=1.0)
@@ -39,7 +39,7 @@ RTOL = 1e-12
 
 
 def test_every_method_has_a_rule():
-    # DESIGN.md: a new method is one file in methods/ plus its rule in theory.py.
+    # docs/design.md: a new method is one file in methods/ plus its rule in theory.py.
     assert set(RULES) == set(METHODS)
 
 
@@ -54,7 +54,7 @@ def test_gd_closed_form():
 
 def test_dcgd_closed_form_meets_the_khaled_richtarik_bound():
     # Khaled & Richtarik 2020, "Better Theory for SGD in the Nonconvex World",
-    # Thm 2 / Cor. 1 (from memory; THEORY.md 2.2 Version A).
+    # Thm 2 / Cor. 1 (from memory; docs/theory.md §2.2 Version A).
     c = _hand_constants()
     omega, n, L, L_max, d0 = 10 / 2 - 1, 3, 2.0, 3.0, 1.5  # Rand-K, K = 2: omega = d/K - 1
     A, B, C = omega * L_max / n, 1.0, 2 * omega * L_max * d0 / n  # Delta* <= Delta0
@@ -72,7 +72,7 @@ def test_dcgd_closed_form_meets_the_khaled_richtarik_bound():
 
 
 def test_diana_closed_form():
-    # THEORY.md 2.3 (derived rule; method of Mishchenko et al. 2019): alpha = 1/(1+omega),
+    # docs/theory.md §2.3 (derived rule; method of Mishchenko et al. 2019): alpha = 1/(1+omega),
     # gamma = min{1/(2L), sqrt(n)/(sqrt(12 omega)(1+omega) L_QM)}, K = 2 Delta0/(gamma eps).
     c = _hand_constants()
     omega, L_qm = 4.0, math.sqrt((1 + 4 + 9) / 3)
@@ -89,7 +89,7 @@ def test_diana_closed_form():
 
 @pytest.mark.parametrize("k", [1, 2, 5, 10])
 def test_marina_rand_k_simplification(k):
-    # Gorbunov et al. 2021, Thm 2.1 (refined form, THEORY.md 2.4): for Rand-K, omega = d/K - 1
+    # Gorbunov et al. 2021, Thm 2.1 (refined form, docs/theory.md §2.4): for Rand-K, omega = d/K - 1
     # and (1-p)/p = d/K - 1, so gamma = 1/(L_- + L_+ (d/K - 1)/sqrt(n)).
     c = _hand_constants()
     d, n = 10, 3
@@ -116,7 +116,7 @@ def test_marina_dither_uses_expected_density():
 
 
 def test_marina_perm_k_uses_the_ab_form():
-    # Szlendak, Tyurin, Richtarik 2022 (from memory; THEORY.md 2.8): PermK has A = B = 1 and
+    # Szlendak, Tyurin, Richtarik 2022 (from memory; docs/theory.md §2.8): PermK has A = B = 1 and
     # p = zeta/d = 1/n (d >= n), so gamma = 1/(L_- + L_pm sqrt(n - 1)); L_pm, not L_+, counts.
     c = dataclasses.replace(_hand_constants(), L_pm=0.5)  # n = 3, d = 10, L_- = 2
     pt = theory_point("marina", "perm_k", c, target=EPS)
@@ -124,12 +124,12 @@ def test_marina_perm_k_uses_the_ab_form():
     assert pt.step_size == pytest.approx(1 / (2.0 + 0.5 * math.sqrt(2)), rel=RTOL)
     K = math.ceil(2 * 1.5 / (pt.step_size * EPS))
     assert pt.predicted_rounds == K
-    # THEORY.md 2.8 bits: 32 d + K [(1/n) 32 d + (1 - 1/n) 32 d/n]
+    # docs/theory.md §2.8 bits: 32 d + K [(1/n) 32 d + (1 - 1/n) 32 d/n]
     assert pt.predicted_bits_per_worker == pytest.approx(320 + K * (320 / 3 + (2 / 3) * 320 / 3), rel=RTOL)
-    # identical workers (L_pm = 0): GD's step while each worker sends d/n floats (THEORY.md 2.8)
+    # identical workers (L_pm = 0): GD's step while each worker sends d/n floats (docs/theory.md §2.8)
     same = dataclasses.replace(c, L_pm=0.0)
     assert theory_point("marina", "perm_k", same, target=EPS).step_size == pytest.approx(1 / 2.0, rel=RTOL)
-    # n >= d with d | n (d = 2, n = 4): A = B = (d-1)/(n-1) = 1/3, p = zeta/d = 1/2 (THEORY.md 1.2)
+    # n >= d with d | n (d = 2, n = 4): A = B = (d-1)/(n-1) = 1/3, p = zeta/d = 1/2 (docs/theory.md §1.2)
     c4 = dataclasses.replace(_hand_constants(L_workers=(1.0, 2.0, 3.0, 2.0), dim=2), L_pm=0.5)
     pt4 = theory_point("marina", "perm_k", c4, target=EPS)
     assert pt4.sync_probability == pytest.approx(0.5, rel=RTOL)
@@ -140,7 +140,7 @@ def test_marina_perm_k_uses_the_ab_form():
 
 @pytest.mark.parametrize("spec", ["rand_k:1", "rand_k:4", "dither:2", "natural", "natural_dither:3"])
 def test_ab_form_with_independent_constants_recovers_marina(spec):
-    # THEORY.md 1.1 / 2.8: independent Q_i in U(omega) satisfy AB with A = omega/n, B = 0, and the
+    # docs/theory.md §1.1 and §2.8: independent Q_i in U(omega) satisfy AB with A = omega/n, B = 0, and the
     # AB step then equals the refined MARINA step 1/(L_- + L_+ sqrt((1-p) omega/(p n))).
     c = _hand_constants(dim=40)
     comp = make_compressor(spec, 40)
@@ -156,7 +156,7 @@ def test_ab_form_with_independent_constants_recovers_marina(spec):
 
 @pytest.mark.parametrize("r", [None, 1, 2, 3])
 def test_pp_marina_closed_form(r):
-    # Gorbunov et al. 2021, Thm 4.1 (from memory; THEORY.md 2.6): p = zeta r/(d n),
+    # Gorbunov et al. 2021, Thm 4.1 (from memory; docs/theory.md §2.6): p = zeta r/(d n),
     # gamma = 1/(L + L_QM sqrt((1-p)(1+omega)/(p r))); bits per round over all clients
     # p n 32 d + (1-p) r bits(Q), i.e. per worker p 32 d + (1-p) r bits(Q)/n.
     c = _hand_constants()
@@ -176,16 +176,16 @@ def test_pp_marina_closed_form(r):
 
 def test_pp_marina_p_is_clipped_to_one():
     # zeta r/(d n) > 1 cannot happen for zeta <= d and r <= n; identity (zeta = d), r = n gives
-    # p = 1: every round is dense and the step is 1/L (THEORY.md 2.6 with p = 1).
+    # p = 1: every round is dense and the step is 1/L (docs/theory.md §2.6 with p = 1).
     pt = theory_point("pp_marina", "identity", _hand_constants(), target=EPS)
     assert pt.sync_probability == 1.0 and pt.step_size == pytest.approx(1 / 2.0, rel=RTOL)
 
 
 @pytest.mark.parametrize("spec,alpha", [("top_k:2", 0.2), ("top_k:7", 0.7), ("rand_k:2", 1 / 5), ("identity", 1.0)])
 def test_ef21_closed_form(spec, alpha):
-    # Richtarik, Sokolov, Fatkhullin 2021, Thm 1 (from memory; THEORY.md 2.9):
+    # Richtarik, Sokolov, Fatkhullin 2021, Thm 1 (from memory; docs/theory.md §2.9):
     # theta = 1 - sqrt(1-alpha), beta = (1-alpha)/(1-sqrt(1-alpha)), gamma = 1/(L + L_QM sqrt(beta/theta)).
-    # Top-K: alpha = K/d; unbiased Q used as Q/(1+omega): alpha = 1/(1+omega) (THEORY.md 1.1).
+    # Top-K: alpha = K/d; unbiased Q used as Q/(1+omega): alpha = 1/(1+omega) (docs/theory.md §1.1).
     c = _hand_constants()
     L_qm = math.sqrt(14 / 3)
     theta = 1 - math.sqrt(1 - alpha)
@@ -198,7 +198,7 @@ def test_ef21_closed_form(spec, alpha):
     per_msg = make_compressor(spec, 10).nominal_bits
     assert pt.predicted_bits_per_worker == 32 * 10 + K * per_msg
     if alpha < 1:
-        # THEORY.md 2.9 identity: sqrt(beta/theta) = 1/(1 - sqrt(1-alpha)) - 1 <= 2/alpha - 1.
+        # docs/theory.md §2.9 identity: sqrt(beta/theta) = 1/(1 - sqrt(1-alpha)) - 1 <= 2/alpha - 1.
         ratio = math.sqrt(beta / theta)
         assert ratio == pytest.approx(1 / (1 - math.sqrt(1 - alpha)) - 1, rel=1e-12)
         assert ratio <= 2 / alpha - 1
@@ -292,7 +292,7 @@ def test_table_uses_measured_contraction_for_top_k_only():
 
 
 def test_marina_rand_k_bits_follow_the_linear_proxy():
-    # THEORY.md 2.4 (derived from Gorbunov et al. 2021, Thm 2.1 and Cor. 2.1): with p = K/d,
+    # docs/theory.md §2.4 (derived from Gorbunov et al. 2021, Thm 2.1 and Cor. 2.1): with p = K/d,
     # bits per round = p 32 d + (1-p) 32 K = 32 K (2 - K/d) and rounds = (2 Delta0/eps)(L_- + L_+ (d/K-1)/sqrt n),
     # so total - 32 d = (2 Delta0/eps) 32 (2 - K/d)(K L_- + L_+ (d-K)/sqrt n), up to the ceil of the rounds;
     # i.e. 64 (2 Delta0/eps)(K L_- + L_+ (d-K)/sqrt n) when K << d.
@@ -307,17 +307,17 @@ def test_marina_rand_k_bits_follow_the_linear_proxy():
         extra = pt.predicted_bits_per_worker - 32 * d
         assert proxy - 1e-9 * proxy <= extra <= proxy + per_round  # the ceil adds at most one round
         bits.append(pt.predicted_bits_per_worker)
-    # (2 - K/d)(a K + b) is concave in K: theory always picks an extreme K (THEORY.md 2.4).
+    # (2 - K/d)(a K + b) is concave in K: theory always picks an extreme K (docs/theory.md §2.4).
     assert int(np.argmin(bits)) in (0, len(ks) - 1)
 
 
 def test_ef21_top_k_worst_case_never_favours_small_k():
-    # THEORY.md 2.9 (derived from Richtarik et al. 2021, Thm 1): with L = L_QM the rounds scale like
+    # docs/theory.md §2.9 (derived from Richtarik et al. 2021, Thm 1): with L = L_QM the rounds scale like
     # 1 + sqrt(beta/theta) = 1/(1 - sqrt(1-K/d)), so K (1 + sqrt(beta/theta)) = d (1 + sqrt(1 - K/d)),
-    # between d and 2d. THEORY.md example, d = 100: 199.5 at K = 1, 100 at K = d.
+    # between d and 2d. docs/theory.md §2.9 example, d = 100: 199.5 at K = 1, 100 at K = d.
     d, L = 100, 2.0
     c = _hand_constants(L=L, L_workers=(L, L, L), L_plus=L, dim=d)
-    per_index = 32 + 7  # float32 + ceil(log2 100) index bits (THEORY.md 1.2)
+    per_index = 32 + 7  # float32 + ceil(log2 100) index bits (docs/theory.md §1.2)
     totals = {}
     for k in range(1, d + 1):
         pt = theory_point("ef21", f"top_k:{k}", c, target=EPS)
@@ -338,7 +338,7 @@ def test_measured_contraction_of_top_k_on_gaussian_vectors():
     # For x with i.i.d. N(0,1) entries and d large, Top-K keeps the fraction of ||x||^2 carried by
     # |x_j| > t, t = Phi^{-1}(1 - K/(2d)): E[x^2; |x| > t] = 2 (t phi(t) + 1 - Phi(t)) (normal
     # distribution, scipy.stats.norm). At K/d = 0.1 this is 0.439, far above the worst case 0.1.
-    # THEORY.md 2.9 reports 0.38 at K/d = 0.1 on one Gaussian vector (own Monte Carlo, smaller d).
+    # docs/theory.md §2.9 reports 0.38 at K/d = 0.1 on one Gaussian vector (own Monte Carlo, smaller d).
     d, k = 1000, 100
     t = norm.isf(k / (2 * d))
     expected = 2 * (t * norm.pdf(t) + norm.sf(t))
@@ -362,7 +362,7 @@ def test_measured_contraction_edge_cases():
     sparse = np.zeros((2, 50))
     sparse[0, [3, 9]] = [1.0, -2.0]
     assert measured_contraction(make_compressor("top_k:2", 50), sparse) == 1.0
-    # Scaled Rand-K: E||x_S - x||^2 = (1 - K/d)||x||^2 for every x (THEORY.md 1.2), so alpha = K/d.
+    # Scaled Rand-K: E||x_S - x||^2 = (1 - K/d)||x||^2 for every x (docs/theory.md §1.2), so alpha = K/d.
     assert measured_contraction(make_compressor("rand_k:5", 50), x) == pytest.approx(0.1, abs=1e-12)
     with pytest.raises(ValueError, match="every vector is zero"):
         measured_contraction(make_compressor("top_k:2", 50), np.zeros((2, 50)))
@@ -374,7 +374,7 @@ def test_measured_contraction_edge_cases():
 
 
 def _bound_constants(problem) -> Constants:
-    """Constants from closed-form bounds (THEORY.md 3.2); L_+ <= L_QM (THEORY.md 3.1) and
+    """Constants from closed-form bounds (docs/theory.md §3.2); L_+ <= L_QM (docs/theory.md §3.1) and
     L_pm <= L_+ make L_QM a valid upper bound for both."""
     L_workers, L = problem.smoothness_bounds()
     L_qm = float(np.sqrt(np.mean(np.square(L_workers))))
@@ -391,9 +391,9 @@ def _bound_constants(problem) -> Constants:
 
 
 def _sample_bound(problem) -> float:
-    """An upper bound on the average smoothness calL (THEORY.md 2.5): row j's Hessian has norm at
+    """An upper bound on the average smoothness calL (docs/theory.md §2.5): row j's Hessian has norm at
     most c ||a_j||^2 + r, with c = 1, r = lam for ridge least squares and c = 1/4, r = 2 lam for
-    the logistic loss with the non-convex regulariser (THEORY.md 3.2), so
+    the logistic loss with the non-convex regulariser (docs/theory.md §3.2), so
     calL_i^2 <= (1/m_i) sum_j (c ||a_j||^2 + r)^2."""
     lam = problem.regularization
     c, r = (1.0, lam) if problem.name == "least_squares" else (0.25, 2.0 * lam)
@@ -433,12 +433,12 @@ def problem_and_constants(request):
 def test_simulation_stays_under_the_published_bound(problem_and_constants, method, spec, measure):
     """E||grad f(x_hat)||^2 <= 2 Delta0/(gamma K), x_hat uniform over x^0..x^{K-1}.
 
-    Bounds: GD, Nesterov 2004 sec. 1.2.3; DIANA, THEORY.md 2.3 (derived, H^0 = 0); MARINA,
+    Bounds: GD, Nesterov 2004 sec. 1.2.3; DIANA, docs/theory.md §2.3 (derived, H^0 = 0); MARINA,
     Gorbunov et al. 2021 Thm 2.1 (refined form); MARINA with PermK, Szlendak et al. 2022 (AB
-    theorem, L_pm <= L_QM used, THEORY.md 3.1); PP-MARINA, Gorbunov et al. 2021 Thm 4.1; EF21,
+    theorem, L_pm <= L_QM used, docs/theory.md §3.1); PP-MARINA, Gorbunov et al. 2021 Thm 4.1; EF21,
     Richtarik et al. 2021 Thm 1 (G^0 = 0); VR-MARINA, Gorbunov et al. 2021 Thm 3.1 (calL from
     the closed-form bound of _sample_bound).
-    With a measured alpha (THEORY.md 2.9) EF21's bound is a heuristic, not a theorem: checked too.
+    With a measured alpha (docs/theory.md §2.9) EF21's bound is a heuristic, not a theorem: checked too.
     """
     problem, c = problem_and_constants
     target = 0.01 * c.grad_sq0  # 1% of the starting ||grad f||^2 (common practice, no source)

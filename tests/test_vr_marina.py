@@ -98,7 +98,7 @@ def _one_round(prob, *, b, batch, spec="identity", seed=0):
 
 
 def test_vr_marina_estimator_is_unbiased_with_the_sampling_variance():
-    """THEORY.md 2.5: with b' rows drawn i.i.d. uniformly with replacement,
+    """docs/theory.md §2.5: with b' rows drawn i.i.d. uniformly with replacement,
     E[g^1 - g^0] = (1/n) sum_i D_i and, with the identity compressor,
     E||g^1 - g^0 - Dbar||^2 = (1/n^2) sum_i (1/b') ((1/m_i) sum_j ||delta_ij||^2 - ||D_i||^2)
     (the variance of a mean of b' i.i.d. draws; common practice, no source). Least squares:
@@ -152,7 +152,7 @@ def test_vr_marina_defaults_and_errors(cancer):
     m.bind(cancer)
     b = round(math.sqrt(cancer.worker_sizes.min()))
     np.testing.assert_array_equal(m.p["minibatch"], [b, b])
-    # p = min(zeta/d, b'/(m + b')) (THEORY.md 2.5, Gorbunov et al. 2021, from memory)
+    # p = min(zeta/d, b'/(m + b')) (docs/theory.md §2.5, Gorbunov et al. 2021, from memory)
     want = min(3 / cancer.dim, b / (cancer.worker_sizes.mean() + b))
     np.testing.assert_allclose(m.p["sync_probability"], [want, want], rtol=1e-15)
     bad = make_method("vr_marina", compressor=comp, n_workers=cancer.n_workers, dim=cancer.dim, batch=1,
@@ -164,7 +164,7 @@ def test_vr_marina_defaults_and_errors(cancer):
 
 
 def test_probe_estimates_the_average_smoothness_of_least_squares(monkeypatch):
-    """calL_i^2 = lambda_max((1/m_i) sum_j (a_j a_j^T + lam I)^2) for least squares (THEORY.md 2.5
+    """calL_i^2 = lambda_max((1/m_i) sum_j (a_j a_j^T + lam I)^2) for least squares (docs/theory.md §2.5
     definition; computed with numpy.linalg.eigvalsh). The estimator is stochastic (16 sign draws:
     about 18% standard error on calL_i, our analysis in probe._sample_smoothness), so the check is
     a band of about 3 standard errors, [0.5, 1.6]; and calL_i >= L_i (Jensen)."""
@@ -196,7 +196,7 @@ def test_probe_estimates_the_average_smoothness_of_least_squares(monkeypatch):
 
 
 def test_vr_marina_theory_rule_is_the_published_formula():
-    """THEORY.md 2.5 (Gorbunov et al. 2021, Thm 3.1, from memory):
+    """docs/theory.md §2.5 (Gorbunov et al. 2021, Thm 3.1, from memory):
     gamma = 1/(L + sqrt(((1-p)/(p n)) (omega L_QM^2 + (1+omega) calL^2/b'))), p = min(zeta/d, b'/(m+b'))."""
     n, d = 4, 20
     c = Constants(n_workers=n, dim=d, L=2.0, L_workers=np.array([2.0, 3.0, 2.5, 1.5]), L_plus=2.5, L_pm=1.0,

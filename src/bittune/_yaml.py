@@ -1,7 +1,7 @@
 """YAML in and out: a strict safe loader, a numpy-aware dumper, atomic writes,
 and the declared-schema checker that ``job.py`` and ``config.py`` share.
 
-The loader fixes two YAML 1.1 traps (STYLE.md, "YAML"): duplicate keys are an
+The loader fixes two YAML 1.1 traps (DEVELOPERS.md, "Code habits"): duplicate keys are an
 error instead of last-one-wins, and ``1e-3`` is a float instead of a string.
 """
 
@@ -192,7 +192,7 @@ def atomic_write_text(path: str | os.PathLike, text: str) -> None:
 
 
 # ---------------------------------------------------------------------------
-# Declared schemas (the scikit-learn habit, STYLE.md): one table per section,
+# Declared schemas (DEVELOPERS.md, "Code habits"): one table per section,
 # key -> Param, one message format, every problem of a file collected.
 
 

@@ -1,7 +1,7 @@
 """Command-line front end: one small function per command, each returning an exit code.
 
 Logs and progress go to stderr; results go to stdout, as one JSON document
-with ``--json`` (DESIGN.md, "Commands and exit codes").
+with ``--json`` (docs/design.md, "Commands and exit codes").
 """
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""Compressors applied by every worker before it sends a message (DESIGN.md, "compressors.py").
+"""Compressors applied by every worker before it sends a message (docs/design.md, "Package layout").
 
 Each compressor works on a whole ``(B, n, d)`` block (B trajectories, n workers)
 with no Python loop over B or n, and returns the exact bit cost of every message.
@@ -7,15 +7,15 @@ from (key_b, round, stream, element (i, j)), so a trajectory sees the same
 numbers alone or inside a batch, and the server can regenerate Rand-K's index
 set (its indices cost no bits).
 
-Classes (THEORY.md 1.1): unbiased compressors are in U(omega), E Q(x) = x and
+Classes (docs/theory.md §1.1): unbiased compressors are in U(omega), E Q(x) = x and
 E||Q(x) - x||^2 <= omega ||x||^2; contractive ones are in B(alpha),
 E||C(x) - x||^2 <= (1 - alpha) ||x||^2. For an unbiased compressor ``alpha`` is
 1/(1 + omega), the contraction of Q/(1 + omega).
 
-Bit costs (THEORY.md 1.2, our cost model): 32-bit floats, ceil(log2 d) bits per
+Bit costs (docs/theory.md §1.2, our cost model): 32-bit floats, ceil(log2 d) bits per
 index when indices depend on the data.
 
-Correlated compressors (THEORY.md 1.1, the "AB inequality"): PermK's workers
+Correlated compressors (docs/theory.md §1.1, the "AB inequality"): PermK's workers
 share one random permutation per (trajectory, round), so its messages are not
 independent across workers. Such a compressor has ``correlated = True`` and
 ``ab = (A, B)``; it needs the worker count (``n_workers``) and compresses
@@ -68,7 +68,7 @@ class Compressor(ABC):
     def _set_unbiased(self, omega: float) -> None:
         self.unbiased = True
         self.omega = float(omega)
-        self.alpha = 1.0 / (1.0 + self.omega)  # Q/(1+omega) is in B(1/(1+omega)), THEORY.md 1.1
+        self.alpha = 1.0 / (1.0 + self.omega)  # Q/(1+omega) is in B(1/(1+omega)), docs/theory.md §1.1
 
     def compress(
         self, v: np.ndarray, keys: np.ndarray, round_: int
@@ -128,7 +128,7 @@ class Identity(Compressor):
 
 
 class RandK(Compressor):
-    """Rand-K: Q(x) = (d/K) x_S for a uniform K-subset S; omega = d/K - 1 (THEORY.md 1.2).
+    """Rand-K: Q(x) = (d/K) x_S for a uniform K-subset S; omega = d/K - 1 (docs/theory.md §1.2).
 
     S is the set of the K smallest of d uniforms, a uniform K-subset. It comes
     from the shared seed, so only the K values are sent: 32 K bits.
@@ -186,7 +186,7 @@ class Dither(Compressor):
     Q(x)_j = ||x|| sign(x_j) xi_j / s, xi_j in {l, l+1}, l = floor(s|x_j|/||x||),
     P(l+1) = s|x_j|/||x|| - l (unbiased). Alistarh, Grubic, Li, Tomioka, Vojnovic,
     "QSGD", NeurIPS 2017, Lemma 3.1: omega = min(d/s^2, sqrt(d)/s), expected
-    nnz <= min(d, s(s + sqrt d)). Bits (THEORY.md 1.2, our model): 32 (norm) + 1
+    nnz <= min(d, s(s + sqrt d)). Bits (docs/theory.md §1.2, our model): 32 (norm) + 1
     (format flag) + the cheaper of dense fixed width, d (1 + ceil(log2(s+1))), and
     sparse, nnz (1 + ceil(log2 d) + ceil(log2 s)).
     """
@@ -254,9 +254,9 @@ class NaturalDither(Compressor):
 
     The levels are {0, 2^(1-s), ..., 1/2, 1}; u_j = |x_j|/||x|| is rounded at random
     to one of its two neighbouring levels, unbiased (P(up) = (u - low)/(high - low)),
-    and Q(x)_j = ||x|| sign(x_j) level_j. Published (from memory, THEORY.md 1.2):
+    and Q(x)_j = ||x|| sign(x_j) level_j. Published (from memory, docs/theory.md §1.2):
     omega = 1/8 + sqrt(d) 2^(1-s) min(1, sqrt(d) 2^(1-s)); expected nnz
-    <= min(d, 2^(s-1)(2^(s-1) + sqrt d)). Bits (THEORY.md 1.2, our model, dense fixed
+    <= min(d, 2^(s-1)(2^(s-1) + sqrt d)). Bits (docs/theory.md §1.2, our model, dense fixed
     width): 32 (norm) + d (1 sign + ceil(log2(s+1)) level-index bits), every message.
     """
 
@@ -297,7 +297,7 @@ class NaturalDither(Compressor):
 class PermK(Compressor):
     """PermK, a correlated sparsifier (Szlendak, Tyurin, Richtarik, "Permutation
     Compressors for Provably Faster Distributed Nonconvex Optimization", ICLR 2022;
-    construction from memory, THEORY.md 1.2).
+    construction from memory, docs/theory.md §1.2).
 
     One random permutation per (trajectory, round), drawn from the trajectory key
     and the round only, so all n workers of a trajectory share it (it is the
@@ -314,13 +314,13 @@ class PermK(Compressor):
       exactly (A = B = 1), padded or not.
     * d < n: pad the n workers up to n' = q d, q = ceil(n/d), with phantom workers
       (zero vectors) and draw a permutation pi of the n' padded workers; worker i
-      sends the coordinate floor(pi_i/q) (0-based; THEORY.md's ceil(pi_i/q) with
+      sends the coordinate floor(pi_i/q) (0-based; docs/theory.md §1.2's ceil(pi_i/q) with
       1-based pi_i) scaled by d: always one real coordinate, 32 bits. Its coordinate
       is uniform, so each worker is in U(d - 1) (equality). Each coordinate's mean
       over the padded workers is that of q of them drawn without replacement, which
       gives, with equality, E||(1/n) sum_i C_i(a_i) - abar||^2 =
       A (1/n) sum_i ||a_i||^2 - B ||abar||^2 with B = (d - 1)/(n' - 1) and
-      A = B n'/n. Without padding (d divides n) A = B = (d - 1)/(n - 1), THEORY.md 1.2.
+      A = B n'/n. Without padding (d divides n) A = B = (d - 1)/(n - 1), docs/theory.md §1.2.
     """
 
     name = "perm_k"

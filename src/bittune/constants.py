@@ -11,7 +11,7 @@ __all__ = ["Constants"]
 
 @dataclass
 class Constants:
-    """Smoothness and scale constants of f = (1/n) sum_i f_i (THEORY.md 3.1).
+    """Smoothness and scale constants of f = (1/n) sum_i f_i (docs/theory.md §3.1).
 
     Every smoothness value already includes ``safety`` (a factor >= 1 applied to
     the estimates). ``bound_*`` hold closed-form upper bounds where the model
@@ -31,14 +31,14 @@ class Constants:
     safety: float = 1.0
     bound_L: float | None = None
     bound_L_workers: np.ndarray | None = None
-    #: Average smoothness calL (THEORY.md 2.5): calL^2 = mean_i calL_i^2 with
+    #: Average smoothness calL (docs/theory.md §2.5): calL^2 = mean_i calL_i^2 with
     #: (1/m_i) sum_j ||grad f_ij(x) - grad f_ij(y)||^2 <= calL_i^2 ||x - y||^2.
     #: None when the model has no per-sample gradients.
     L_sample: float | None = None
     samples_per_worker: float | None = None  # mean m_i (VR-MARINA's p and b')
     min_samples_per_worker: int | None = None  # min m_i (the largest minibatch b')
     #: The PL constant mu the user states (job ``assume.pl_mu``): (1/2)||grad f||^2 >= mu (f - f_inf).
-    #: When set, the theory rules that have a PL form use it (THEORY.md 2.7, 2.9).
+    #: When set, the theory rules that have a PL form use it (docs/theory.md §2.7, §2.9).
     pl_mu: float | None = None
     extra: dict = field(default_factory=dict)  # e.g. measured contraction of Top-K
 

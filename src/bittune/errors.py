@@ -1,10 +1,10 @@
-"""The error types every stage raises, with the exit code each maps to (DESIGN.md)."""
+"""The error types every stage raises, with the exit code each maps to (docs/design.md, "Commands and exit codes")."""
 
 from __future__ import annotations
 
 __all__ = ["BittuneError", "InputError", "GradientCheckError", "StorageError", "EXIT"]
 
-#: Exit codes of every command (DESIGN.md, "Commands and exit codes").
+#: Exit codes of every command (docs/design.md, "Commands and exit codes").
 EXIT = {
     "ok": 0,
     "internal": 1,

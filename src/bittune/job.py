@@ -199,7 +199,7 @@ SECTIONS: dict[str, dict[str, Param]] = {
         "downlink_bandwidth": Param("real", low=0, closed="right", default=1e7),
         "compute_seconds": Param("real", low=0),  # default: measured by the probe
     },
-    "assume": {  # optional statements about f: the PL theory rules (THEORY.md 2.7, 2.9) use pl_mu
+    "assume": {  # optional statements about f: the PL theory rules (docs/theory.md §2.7, §2.9) use pl_mu
         "pl_mu": Param("real", low=0, closed="right"),
     },
     "probe": {

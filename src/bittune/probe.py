@@ -1,4 +1,4 @@
-"""Gradient check and smoothness estimation (DESIGN.md, "probe"; THEORY.md 3.3).
+"""Gradient check and smoothness estimation (docs/design.md, "Data flow"; docs/theory.md §3.3).
 
 Both work on any object with the batched oracle of
 :class:`bittune.problems.Problem`. Every finite difference is central, with
@@ -238,7 +238,7 @@ def _power(oracle, pts: np.ndarray, *, iters: int, rng) -> dict:
 
 
 def _sample_smoothness(problem, pts: np.ndarray, *, iters: int, draws: int, rng) -> np.ndarray:
-    """Average smoothness calL_i (THEORY.md 2.5) per worker, (n,): the largest over ``pts`` of
+    """Average smoothness calL_i (docs/theory.md §2.5) per worker, (n,): the largest over ``pts`` of
     sqrt(lambda_max(M_i)), M_i = (1/m_i) sum_j H_ij^2, H_ij the Hessian of row j's f_ij.
 
     Power iteration on M_i without per-row Hessians: for Rademacher signs s_j,
@@ -322,7 +322,7 @@ def estimate_constants(
     strict: bool = True,
     sample_smoothness: bool = False,
 ) -> tuple[Constants, ProbeReport]:
-    """Estimate the smoothness constants of THEORY.md 3.1 near the path from ``x0``.
+    """Estimate the smoothness constants of docs/theory.md §3.1 near the path from ``x0``.
 
     Probe points: x0, ``runs - 1`` random starts at distance 1 + ||x0|| from
     it, and from each start ``points_per_run`` GD runs of ``run_rounds``

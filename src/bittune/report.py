@@ -7,7 +7,7 @@ external resource), ``report.md`` (for terminals and review; it links the PNGs
 beside it), the PNGs, and ``report_data.json`` with every number the figures
 show.
 
-Data and drawing are separate (STYLE.md): the numbers of each figure come from
+Data and drawing are separate (DEVELOPERS.md, "Code habits"): the numbers of each figure come from
 a function tests call (``curve_band``, ``search_history``, ``step_response``,
 ``worker_smoothness``, ``best_per_method``, ``importance``); the ``_draw_*``
 functions only draw. Matplotlib is used through its Agg canvas directly, not

@@ -34,7 +34,7 @@ from .tune import _config_doc, _plain, _Progress, prepare, respace, run_search, 
 
 __all__ = ["RetuneResult", "retune", "drift_table", "decide", "HISTORY_FIELDS", "history_rows"]
 
-#: Constants compared between nights (DESIGN.md: smoothness, Delta0, heterogeneity).
+#: Constants compared between nights (docs/design.md, "Nightly retuning": smoothness, Delta0, heterogeneity).
 DRIFT_KEYS = ("L", "L_am", "L_qm", "L_max", "L_plus", "L_pm", "delta0", "grad_sq0", "heterogeneity0", "samples")
 #: Default decision settings: margin 3%, level 5% (issue text); drift threshold ours (no source).
 MARGIN, LEVEL, DRIFT_THRESHOLD = 0.03, 0.05, 0.5

@@ -1,6 +1,6 @@
 """The Optuna study: theory-relative space, seeding, objective, pruning, parallel trials.
 
-The search never asks for a raw step size (DESIGN.md, "Theory-relative
+The search never asks for a raw step size (docs/design.md, "Theory-relative
 search"): a trial picks a method, a compressor and its density, then a
 multiplier over the theory step of that method at that density, a multiplier
 over MARINA's theory sync probability zeta/d, and one over DIANA's shift rate
@@ -12,8 +12,8 @@ over the same few seeds for every trial (common random numbers); the seeds run
 as one batch in the engine. Missing the target costs a finite penalty that
 grows with the distance to it; diverging costs twice that.
 
-Parallel trials are processes sharing one Optuna storage (STYLE.md, "Optuna
-facts"): a journal file in the run directory by default, any Optuna storage URL
+Parallel trials are processes sharing one Optuna storage (DEVELOPERS.md,
+"Code habits"): a journal file in the run directory by default, any Optuna storage URL
 otherwise. The trial budget is global: a process asks for a trial only while
 fewer than ``budget`` trials are finished or running.
 """
@@ -42,11 +42,11 @@ __all__ = [
 
 #: Trial states that count against the global budget.
 COUNTED = (TrialState.COMPLETE, TrialState.PRUNED, TrialState.RUNNING)
-#: Step multipliers enqueued above the theory point (DESIGN.md: theory is timid).
+#: Step multipliers enqueued above the theory point (docs/design.md: theory is timid).
 SEED_LADDER = (1.0, 2.0, 4.0, 16.0, 64.0, 256.0)
 #: Methods with MARINA's sync probability p (searched as a multiplier of the theory p).
 SYNCED = ("marina", "pp_marina", "vr_marina")
-#: Minimum stall window in rounds; MARINA's grows like 1/p (DESIGN.md measurements).
+#: Minimum stall window in rounds; MARINA's grows like 1/p (docs/design.md measurements).
 STALL_ROUNDS = 100
 #: Cost between pruning checkpoints grows by this factor (common practice, no source).
 CHECKPOINT_GROWTH = 2.0
@@ -226,7 +226,7 @@ class Space:
         """The compressor setting with the fewest predicted bits for ``method``.
 
         Densities are tried on a log grid (theory usually picks an extreme K,
-        THEORY.md 2.4 and 2.9), dithering over its level range.
+        docs/theory.md §2.4 and §2.9), dithering over its level range.
         """
         best, best_bits = None, math.inf
         for name in self.compressors[method]:

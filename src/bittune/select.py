@@ -1,6 +1,6 @@
 """Validation on fresh seeds, robustness back-off, final choice.
 
-Bits to target vary a lot between seeds for some methods (DESIGN.md: MARINA
+Bits to target vary a lot between seeds for some methods (docs/design.md: MARINA
 1.3-2.8x), so the best trial of a search is partly luck. The best few
 distinct candidates are re-run on seeds the search never used; the winner is
 the one with the lowest mean cost (bits, or simulated seconds) that reached

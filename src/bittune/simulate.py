@@ -2,7 +2,7 @@
 
 B trajectories (different seeds, step sizes, sync probabilities, ...) of one
 method and one compressor advance together: their iterates form a (B, d)
-matrix and every round is one batched oracle call (DESIGN.md, "The engine").
+matrix and every round is one batched oracle call (docs/design.md, "The engine").
 A trajectory leaves the batch when it reaches the target, spends its budget
 or diverges; the others go on without it.
 """

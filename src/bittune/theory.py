@@ -3,8 +3,8 @@
 Each rule turns the measured :class:`~bittune.constants.Constants` and one
 compressor into a step size (plus sync probability or shift rate), the rounds
 K that its published bound needs to reach E||grad f(x_hat)||^2 <= target, and
-the uplink bits per worker for those K rounds (THEORY.md 2.10). ``target`` is
-the absolute target on ||grad f||^2 (THEORY.md writes it eps^2).
+the uplink bits per worker for those K rounds (docs/theory.md §2.10). ``target`` is
+the absolute target on ||grad f||^2 (docs/theory.md writes it eps^2).
 
 A new method is one file in ``methods/`` plus its rule in :data:`RULES`.
 """
@@ -73,7 +73,7 @@ class TheoryPoint:
 
 
 def _rounds(numerator: float, target: float) -> int:
-    """K = ceil(numerator / target), at least 1 (THEORY.md 2, "Common facts")."""
+    """K = ceil(numerator / target), at least 1 (docs/theory.md §2, "Common facts")."""
     value = numerator / target
     if not math.isfinite(value):
         raise ValueError(f"predicted rounds are not finite ({numerator!r} / target {target!r})")
@@ -99,7 +99,7 @@ def gd_rule(compressor: Compressor, constants: Constants, *, target: float) -> T
 
 
 def dcgd_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
-    """DCGD, no extra assumption (THEORY.md 2.2 Version A).
+    """DCGD, no extra assumption (docs/theory.md §2.2 Version A).
 
     Khaled & Richtarik, "Better Theory for SGD in the Nonconvex World", 2020,
     Theorem 2 / Corollary 1 (numbers from memory): with the ABC constants
@@ -127,10 +127,10 @@ def dcgd_rule(compressor: Compressor, constants: Constants, *, target: float) ->
 
 
 def diana_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
-    """DIANA with our derived safe step (THEORY.md 2.3).
+    """DIANA with our derived safe step (docs/theory.md §2.3).
 
     Method: Mishchenko, Gorbunov, Takac, Richtarik, "Distributed Learning with
-    Compressed Gradient Differences", 2019. Rule derived in THEORY.md 2.3
+    Compressed Gradient Differences", 2019. Rule derived in docs/theory.md §2.3
     (Lyapunov function f - f_inf + c H), consistent with the rate quoted by
     MARINA (Gorbunov et al., 2021; from memory): alpha = 1/(1+omega),
     gamma = min{1/(2L), sqrt(n)/(sqrt(12 omega)(1+omega) L_QM)}. Shifts start at
@@ -143,11 +143,11 @@ def diana_rule(compressor: Compressor, constants: Constants, *, target: float) -
     rounds = _rounds(2.0 * c.delta0 / gamma, target)
     bits = dense_bits(c.dim) + rounds * compressor.nominal_bits
     return _point("diana", compressor, gamma, rounds, bits,
-                  "derived (THEORY 2.3) for DIANA, Mishchenko et al. 2019", shift=1.0 / (1.0 + omega))
+                  "derived (docs/theory.md §2.3) for DIANA, Mishchenko et al. 2019", shift=1.0 / (1.0 + omega))
 
 
 def ab_step_size(*, L_minus: float, L_plus: float, L_pm: float, p: float, A: float, B: float) -> float:
-    """MARINA's step under the AB inequality (THEORY.md 1.1 and 2.8).
+    """MARINA's step under the AB inequality (docs/theory.md §1.1 and §2.8).
 
     Szlendak, Tyurin, Richtarik, "Permutation Compressors for Provably Faster
     Distributed Nonconvex Optimization", ICLR 2022, main theorem (number from
@@ -163,7 +163,7 @@ def ab_step_size(*, L_minus: float, L_plus: float, L_pm: float, p: float, A: flo
 
 
 def marina_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:
-    """MARINA, refined form (THEORY.md 2.4), AB form for correlated compressors (2.8).
+    """MARINA, refined form (docs/theory.md §2.4), AB form for correlated compressors (2.8).
 
     Gorbunov, Burlachenko, Li, Richtarik, "MARINA: Faster Non-Convex Distributed
     Learning with Compression", ICML 2021, Theorem 2.1 and Corollary 2.1 (from
@@ -191,11 +191,11 @@ def marina_rule(compressor: Compressor, constants: Constants, *, target: float) 
 
 def pp_marina_rule(compressor: Compressor, constants: Constants, *, target: float,
                    clients: int | None = None) -> TheoryPoint:
-    """PP-MARINA, r clients sampled with replacement per compressed round (THEORY.md 2.6).
+    """PP-MARINA, r clients sampled with replacement per compressed round (docs/theory.md §2.6).
 
     Gorbunov, Burlachenko, Li, Richtarik, "MARINA: Faster Non-Convex Distributed
     Learning with Compression", ICML 2021, Theorem 4.1 (number and form from
-    memory; THEORY.md re-derives the form): p = zeta r/(d n) clipped to (0, 1],
+    memory; docs/theory.md §2.6 re-derives the form): p = zeta r/(d n) clipped to (0, 1],
     gamma = 1/(L + L_QM sqrt((1-p)(1+omega)/(p r))), E||grad f(x_hat)||^2 <=
     2 Delta0/(gamma K). Bits per worker (the mean over workers of what each sent):
     32 d + K (p 32 d + (1-p) r bits(Q)/n). ``clients`` defaults to n.
@@ -215,11 +215,11 @@ def pp_marina_rule(compressor: Compressor, constants: Constants, *, target: floa
 
 def vr_marina_rule(compressor: Compressor, constants: Constants, *, target: float,
                    minibatch: int | None = None) -> TheoryPoint:
-    """VR-MARINA, minibatches of b' rows drawn with replacement (THEORY.md 2.5).
+    """VR-MARINA, minibatches of b' rows drawn with replacement (docs/theory.md §2.5).
 
     Gorbunov, Burlachenko, Li, Richtarik, "MARINA: Faster Non-Convex Distributed
     Learning with Compression", ICML 2021, Theorem 3.1 (number and form from
-    memory; THEORY.md re-derives the form): p = min(zeta/d, b'/(m + b')),
+    memory; docs/theory.md §2.5 re-derives the form): p = min(zeta/d, b'/(m + b')),
     gamma = 1/(L + sqrt(((1-p)/(p n)) (omega L_QM^2 + (1+omega) calL^2/b'))),
     E||grad f(x_hat)||^2 <= 2 Delta0/(gamma K). calL is the average smoothness
     (``constants.L_sample``), m the mean worker size. Bits as MARINA's;
@@ -250,7 +250,7 @@ def vr_marina_rule(compressor: Compressor, constants: Constants, *, target: floa
 
 def ef21_rule(compressor: Compressor, constants: Constants, *, target: float,
               alpha: float | None = None) -> TheoryPoint:
-    """EF21 (THEORY.md 2.9).
+    """EF21 (docs/theory.md §2.9).
 
     Richtarik, Sokolov, Fatkhullin, "EF21: A New, Simpler, Theoretically Better,
     and Practically Faster Error Feedback", NeurIPS 2021, Theorem 1 (number from
@@ -280,8 +280,8 @@ RULES: dict[str, Callable[..., TheoryPoint]] = {
 }
 
 
-#: Methods with a PL rule (THEORY.md 2.7, 2.9; Karimi et al. 2016 for GD). DCGD and DIANA
-#: keep their non-convex rules under PL (THEORY.md has no PL form for them).
+#: Methods with a PL rule (docs/theory.md §2.7, §2.9; Karimi et al. 2016 for GD). DCGD and DIANA
+#: keep their non-convex rules under PL (docs/theory.md §2.7 has no PL form for them).
 PL_METHODS = ("gd", "marina", "pp_marina", "vr_marina", "ef21")
 
 
@@ -302,16 +302,16 @@ def _pl_rounds(gamma: float, mu: float, c: Constants, target: float) -> int:
 
 def pl_point(point: TheoryPoint, compressor: Compressor, constants: Constants, *, target: float,
              alpha: float | None = None) -> TheoryPoint:
-    """The PL version of a non-convex theory point (``constants.pl_mu`` set; THEORY.md 2.7, 2.9).
+    """The PL version of a non-convex theory point (``constants.pl_mu`` set; docs/theory.md §2.7, §2.9).
 
     * GD: gamma = 1/L and f(x^K) - f_inf <= (1 - mu/L)^K Delta0 (Karimi, Nutini,
       Schmidt, ECML-PKDD 2016, Thm 1; from memory).
     * MARINA: gamma = min{1/(L + L_QM sqrt(2 (1-p) omega/(p n))), p/(2 mu)} and
       E[f(x^K) - f_inf] <= (1 - gamma mu)^K Delta0 (Gorbunov et al. 2021, PL theorem;
-      number from memory, form THEORY.md 2.7; the start g^0 = grad f(x^0) makes the
+      number from memory, form docs/theory.md §2.7; the start g^0 = grad f(x^0) makes the
       Lyapunov term (gamma/p)||g - grad f||^2 zero). PermK keeps its AB step, capped by p/(2 mu).
     * PP-MARINA and VR-MARINA: their non-convex variance terms with the same factor 2,
-      min with p/(2 mu) ("analogous", THEORY.md 2.7, from memory).
+      min with p/(2 mu) ("analogous", docs/theory.md §2.7, from memory).
     * EF21: gamma = min{1/(L + L_QM sqrt(2 beta/theta)), theta/(2 mu)} (Richtarik et al.
       2021, Thm 2; from memory; dense start, G^0 = 0).
     Rounds from the linear rate (:func:`_pl_rounds`); bits as the non-convex rule counts them.
@@ -336,7 +336,7 @@ def pl_point(point: TheoryPoint, compressor: Compressor, constants: Constants, *
     elif m == "ef21":
         a = compressor.alpha if alpha is None else float(alpha)
         theta = a / (1.0 + math.sqrt(1.0 - a))  # 1 - sqrt(1-a) without cancellation
-        # sqrt(2 beta/theta) = sqrt(2) sqrt(1-a)/theta (THEORY.md 2.9)
+        # sqrt(2 beta/theta) = sqrt(2) sqrt(1-a)/theta (docs/theory.md §2.9)
         gamma = min(1.0 / (c.L + c.L_qm * math.sqrt(2.0) * math.sqrt(1.0 - a) / theta), theta / (2.0 * mu))
     else:
         return point
@@ -374,7 +374,7 @@ def fits(method: str, comp: Compressor) -> bool:
     GD sends dense gradients; DCGD, DIANA, MARINA and PP-MARINA need an unbiased
     Q; EF21 takes any.
 
-    Correlated compressors (PermK) fit MARINA (its AB theorem, THEORY.md 2.8) and EF21
+    Correlated compressors (PermK) fit MARINA (its AB theorem, docs/theory.md §2.8) and EF21
     (a per-worker analysis); the DCGD, DIANA and PP-MARINA rules assume independent Q_i.
     """
     if method == "gd":
@@ -444,7 +444,7 @@ def default_compressor_specs(dim: int, *, n_workers: int | None = None) -> dict[
 
     K covers 1%, 5%, 10% and 25% of d (common practice, no source); identity
     only for GD (with it, the other methods reduce to GD). With ``n_workers``
-    (PermK is built for one n), MARINA also gets perm_k (THEORY.md 2.8).
+    (PermK is built for one n), MARINA also gets perm_k (docs/theory.md §2.8).
     """
     ks = sorted({max(1, round(dim * f)) for f in (0.01, 0.05, 0.1, 0.25)} - {dim})
     rand = [f"rand_k:{k}" for k in ks]
@@ -489,7 +489,7 @@ def measured_contraction(compressor: Compressor, vectors: np.ndarray, *, draws: 
                          seed: int = 0) -> float:
     """Effective alpha = 1 - max over ``vectors`` of E||C(x) - x||^2 / ||x||^2.
 
-    THEORY.md 2.9: Top-K contracts far more than its worst case K/d on real
+    docs/theory.md §2.9: Top-K contracts far more than its worst case K/d on real
     vectors, so an autotuner should measure alpha. ``vectors`` is (B, n, d) or
     (m, d); zero rows are skipped. An unbiased Q is measured as Q/(1+omega), as
     EF21 uses it, with the expectation taken over ``draws`` random draws. The

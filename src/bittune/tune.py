@@ -1,6 +1,6 @@
 """The main job: probe, theory, search, select, write the config.
 
-``tune`` runs every stage of DESIGN.md's data flow in order and writes the
+``tune`` runs every stage of docs/design.md's data flow in order and writes the
 config atomically. Parallel trials run in ``jobs`` processes (joblib), each
 with its own sampler seed from ``SeedSequence(seed).spawn`` and
 single-threaded numerics, all sharing one Optuna storage; a killed run

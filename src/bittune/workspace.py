@@ -1,6 +1,6 @@
 """From a job to what every command simulates on: problem, start point, target.
 
-This is the "problem" stage of DESIGN.md's data flow: load the data, split it
+This is the "problem" stage of docs/design.md's data flow: load the data, split it
 over the simulated workers, build the batched oracle, resolve the start point
 and the absolute target. Every command that simulates starts here.
 

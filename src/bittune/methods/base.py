@@ -18,7 +18,7 @@ __all__ = ["Method", "dense_bits"]
 
 
 def dense_bits(dim: int) -> float:
-    """Bits of one dense float32 vector (THEORY.md 1.2: b_full = 32 d)."""
+    """Bits of one dense float32 vector (docs/theory.md §1.2: b_full = 32 d)."""
     return 32.0 * dim
 
 

@@ -5,7 +5,7 @@ with the same draw. Mishchenko, Gorbunov, Takac, Richtarik, "Distributed
 Learning with Compressed Gradient Differences" (2019).
 
 Shifts start at the local gradients of x^0 (one dense message, H^0 = 0; the
-theory bound of THEORY.md 2.3 then has no H^0 term).
+theory bound of docs/theory.md §2.3 then has no H^0 term).
 """
 
 from __future__ import annotations

@@ -4,7 +4,7 @@ c_i = C(grad f_i(x^{t+1}) - g_i^t); g_i^{t+1} = g_i^t + c_i; g = mean_i g_i.
 Richtarik, Sokolov, Fatkhullin, "EF21: A New, Simpler, Theoretically Better,
 and Practically Faster Error Feedback" (NeurIPS 2021), Algorithm 1. An unbiased
 compressor Q in U(omega) is used as Q/(1+omega), which is contractive with
-alpha = 1/(1+omega) (THEORY.md 1.1). g_i^0 = grad f_i(x^0) (dense, G^0 = 0).
+alpha = 1/(1+omega) (docs/theory.md §1.1). g_i^0 = grad f_i(x^0) (dense, G^0 = 0).
 """
 
 from __future__ import annotations

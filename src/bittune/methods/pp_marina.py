@@ -10,7 +10,7 @@ Learning with Compression" (ICML 2021), Algorithm 4 (PP-MARINA; number from memo
 
 Every draw j is compressed on its own (its own random numbers, slot j of a
 (B, r, d) block): a client drawn twice sends two independent compressions of
-its difference, as the variance bound of THEORY.md 2.6 assumes
+its difference, as the variance bound of docs/theory.md §2.6 assumes
 ((1/r) E_i E||Q_i(D_i)||^2 needs independent draws). The client draws come from
 (trajectory key, round, STREAM["clients"], draw j), so a trajectory draws the
 same clients alone or in a batch, with any mix of r in the batch.
@@ -35,7 +35,7 @@ __all__ = ["PPMARINA"]
 class PPMARINA(Method):
     name = "pp_marina"
     #: Both defaults depend on n as well as on the compressor: filled in __init__
-    #: (clients: r = n; sync_probability: zeta r/(d n), THEORY.md 2.6, from memory).
+    #: (clients: r = n; sync_probability: zeta r/(d n), docs/theory.md §2.6, from memory).
     params = {"sync_probability": None, "clients": None}
 
     def __init__(self, *, compressor, n_workers: int, dim: int, batch: int, **params):

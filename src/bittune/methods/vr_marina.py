@@ -7,7 +7,7 @@ rows i.i.d. uniformly with replacement (the set I'_ik) and
 g^{k+1} = g^k + (1/n) sum_i Q_i( (1/b') sum_{j in I'_ik} (grad f_ij(x^{k+1}) - grad f_ij(x^k)) ).
 Gorbunov, Burlachenko, Li, Richtarik, "MARINA: Faster Non-Convex Distributed
 Learning with Compression" (ICML 2021), Algorithm 2 (VR-MARINA; number from
-memory); THEORY.md 2.5.
+memory); docs/theory.md §2.5.
 
 Both gradients of a difference are taken on the same rows: one call of the
 problem's minibatch oracle (``weighted_grads``) on the stacked points
@@ -41,7 +41,7 @@ def default_minibatch(sizes) -> int:
 class VRMARINA(Method):
     name = "vr_marina"
     #: Defaults depend on the worker sizes: filled in __init__ (minibatch: default_minibatch;
-    #: sync_probability: min(zeta/d, b'/(m + b')), THEORY.md 2.5, from memory; m = mean m_i).
+    #: sync_probability: min(zeta/d, b'/(m + b')), docs/theory.md §2.5, from memory; m = mean m_i).
     params = {"sync_probability": None, "minibatch": None}
 
     def __init__(self, *, compressor, n_workers: int, dim: int, batch: int, **params):

@@ -1,4 +1,4 @@
-"""Models with batched local gradients (DESIGN.md, "Package layout")."""
+"""Models with batched local gradients (docs/design.md, "Package layout")."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""Worker-sharded data laid out for batched passes (DESIGN.md, "The engine").
+"""Worker-sharded data laid out for batched passes (docs/design.md, "The engine").
 
 Worker i's rows are padded to a common length ``m_max`` so that every pass is a
 handful of BLAS calls on a (workers, m_max, d) layout, never a Python loop over

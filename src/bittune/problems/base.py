@@ -173,7 +173,7 @@ class Problem(ABC):
     # ---------------------------------------------------------- constants
     @abstractmethod
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
-        """Closed-form upper bounds: per-worker L_i (n,) and L of f (THEORY.md 3.2)."""
+        """Closed-form upper bounds: per-worker L_i (n,) and L of f (docs/theory.md §3.2)."""
 
     def loss_lower_bound(self) -> float:
         """A lower bound on f (every model here has non-negative loss)."""

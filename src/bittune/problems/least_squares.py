@@ -37,6 +37,6 @@ class LeastSquares(Problem):
         return z
 
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
-        # Hessian of f_i is A_i^T A_i/m_i + lam I: the bounds are exact (THEORY.md 3.2).
+        # Hessian of f_i is A_i^T A_i/m_i + lam I: the bounds are exact (docs/theory.md §3.2).
         per, pooled = self.shards.gram_top_eigs()
         return per + self.regularization, pooled + self.regularization

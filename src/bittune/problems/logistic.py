@@ -44,6 +44,6 @@ class LogisticNonconvex(Problem):
 
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
         # Logistic Hessian <= A^T A/(4m) (s(1-s) <= 1/4); the regulariser's
-        # Hessian is diagonal with entries in [-lam/2, 2 lam] (THEORY.md 3.2).
+        # Hessian is diagonal with entries in [-lam/2, 2 lam] (docs/theory.md §3.2).
         per, pooled = self.shards.gram_top_eigs()
         return per / 4.0 + 2.0 * self.regularization, pooled / 4.0 + 2.0 * self.regularization

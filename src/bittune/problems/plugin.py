@@ -19,7 +19,7 @@ Optional attributes of ``model`` (all workers must agree on ``dim``):
 * ``smoothness``: an upper bound on this worker's L_i; when every worker
   gives one, :meth:`PluginProblem.smoothness_bounds` returns them (plus the
   ridge term) and their mean as the bound on L (L <= mean_i L_i by the
-  triangle inequality, THEORY.md 3.1); otherwise the probe estimates them;
+  triangle inequality, docs/theory.md §3.1); otherwise the probe estimates them;
 * ``lower_bound``: a lower bound on this worker's loss (default 0: the loss is
   assumed non-negative; the job's ``probe.lower_bound`` overrides).
 
@@ -261,7 +261,7 @@ class PluginProblem:
         return out
 
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
-        """The models' ``smoothness`` + lam per worker, and their mean for f (THEORY.md 3.1)."""
+        """The models' ``smoothness`` + lam per worker, and their mean for f (docs/theory.md §3.1)."""
         per = self._numbers("smoothness")
         if per is None:
             raise NotImplementedError(f"{self.spec}: no 'smoothness' attribute on every worker's model")

@@ -1,6 +1,6 @@
 """Quadratic workers f_i(x) = (1/2) x^T H_i x + b_i^T x: the probe's ground truth.
 
-Every smoothness constant of THEORY.md 3.1 has a closed form here, so tests can
+Every smoothness constant of docs/theory.md §3.1 has a closed form here, so tests can
 compare numerical estimates with exact values. The class offers the oracle of
 :class:`bittune.problems.Problem` (``local_grads`` on (B, d) or (B, n, d)
 iterates, ``local_losses``, ``full_grad``, ``full_loss``, ``smoothness_bounds``,
@@ -82,7 +82,7 @@ class Quadratic:
 
     # ---------------------------------------------------------- constants
     def smoothness_bounds(self) -> tuple[np.ndarray, float]:
-        """The exact constants: L_i = ||H_i||_2 (n,) and L = ||mean_i H_i||_2 (THEORY.md 3.1)."""
+        """The exact constants: L_i = ||H_i||_2 (n,) and L = ||mean_i H_i||_2 (docs/theory.md §3.1)."""
         per = np.linalg.norm(self.H, ord=2, axis=(1, 2))
         return per, float(np.linalg.norm(self.H.mean(axis=0), ord=2))
 
