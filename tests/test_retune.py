@@ -130,7 +130,7 @@ def test_changed_dimension_falls_back_to_full_tuning(night0, tmp_path):
 
 def test_output_equal_to_previous_is_left_alone_when_kept(night0, tmp_path):
     folder, job = night0
-    prod = tmp_path / "prod.yaml"
+    prod = folder / "prod-same.yaml"  # beside the original: its provenance paths (relative to it) still hold
     prod.write_text((folder / "prod.yaml").read_text())
     before = prod.read_bytes()
     result = retune(job, previous=prod, output=prod, trials=10, progress=Quiet())

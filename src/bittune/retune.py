@@ -144,10 +144,14 @@ def _clip(v: float, bounds) -> float:
     return float(min(max(v, bounds[0]), bounds[1]))
 
 
-def _previous_best(cfg: Config, count: int = 3) -> list[Candidate]:
-    """The previous study's best few candidates, when its storage can be read (else none)."""
+def _previous_best(cfg: Config, path: Path, count: int = 3) -> list[Candidate]:
+    """The previous study's best few candidates, when its storage can be read (else none).
+
+    A storage file path in ``provenance`` is relative to the config's folder (older configs: absolute)."""
     prov = cfg.extra.get("provenance") or {}
     url, name = prov.get("storage"), prov.get("study")
+    if isinstance(url, str) and "://" not in url:
+        url = str(Path(path).parent / url)  # an absolute path stays as it is
     if not url or not name or ("://" not in url and not Path(url).exists()):
         return []
     try:
@@ -215,7 +219,7 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
         overrides = {"trials": trials or max(10, spec.trials // 3)}
         if small and prev_cand.method in first.space.methods:
             overrides.update(_narrowed(spec, prev_cand, first.space))
-        warm_cands = [prev_cand] + _previous_best(prev)
+        warm_cands = [prev_cand] + _previous_best(prev, previous)
     prep = respace(first, overrides)
     log.total = prep.job.search.trials
     warm = _warm_params(prep.space, warm_cands)
@@ -242,7 +246,7 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
         section["f_ref"] = {"previous": old.get("value") if isinstance(old, dict) else None,
                             "current": ws.loss_ref, "note": ws.reference["note"]}
     if decision == "replaced":
-        doc = _config_doc(prep, selection, study.study_name, storage_url)
+        doc = _config_doc(prep, selection, study.study_name, storage_url, output)
     else:
         doc = config_to_dict(prev)
         doc.pop("retune", None)
