@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import io
 import json
 import subprocess
 import sys
@@ -15,7 +16,7 @@ from bittune.cli import main
 from bittune.config import SEED_DIGITS, load_config, sig
 from bittune.select import GAIN_LEVEL, paired_gain
 from bittune.tune import tune
-from conftest import Quiet
+from bittune.progress import Progress
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -69,7 +70,9 @@ search: {methods: [diana, marina, ef21], compressors: [rand_k, top_k, dither], t
 """)
     out = folder / "out" / "config.yaml"
     out.parent.mkdir()
-    result = tune(folder / "data" / "job.yaml", output=out, progress=Quiet())
+    log = Progress(total=16, stream=io.StringIO())  # not a terminal: plain lines
+    result = tune(folder / "data" / "job.yaml", output=out, progress=log)
+    result.log = log.stream.getvalue()
     return folder, out, result
 
 
@@ -132,3 +135,14 @@ def test_config_has_units_rounded_figures_exact_settings_and_relative_paths(tune
     assert prov["job"] == "../data/job.yaml" and prov["data"] == "../data/stations.svm"
     assert (out.parent / prov["storage"]).exists()
     load_config(out)  # the written config passes its own schema
+
+
+@pytest.mark.slow
+def test_every_long_phase_reports_done_over_total(tuned):
+    lines = tuned[2].log.splitlines()
+    assert any(ln.startswith("[bittune] search: 16/16 trials") for ln in lines)
+    for phase in ("validation", "back-off", "baselines"):
+        mine = [ln for ln in lines if ln.startswith(f"[bittune] {phase}: ")]
+        assert mine, phase
+        done, total = mine[-1].split(": ")[1].split(" ")[0].split("/")
+        assert done == total

@@ -169,6 +169,7 @@ def test_decision_rule_needs_margin_and_significance():
     assert decide(noisy, old)[0] == "kept"
     decision, reason, p = decide(better, old)
     assert decision == "replaced" and p < 0.05
+    assert "fewer bits on the 5 fresh seeds" in reason  # the quantity named: fresh, not search, seeds
     # Reference p-value from scipy directly.
     from scipy import stats
 

@@ -299,10 +299,12 @@ def _cmd_retune(args: argparse.Namespace) -> int:
         print(f"{row['quantity']:<40} {row['previous']:>12.4g} {row['current']:>12.4g} {row['ratio']:>8.3f}")
     new, old = section["new"], section["previous"]
     print(f"tonight's best: {new['method']} + {new['compressor']}, step {new['step_size']:.4g}: "
-          f"{new['mean_bits_per_worker']:,.0f} bits/worker, reached {new['reached']}/{new['seeds']}")
+          f"{new['mean_bits_per_worker']:,.0f} bits/worker on {new['seeds']} fresh seeds, "
+          f"reached {new['reached']}/{new['seeds']}")
     if old:
         print(f"previous config: {old['method']} + {old['compressor']}, step {old['step_size']:.4g}: "
-              f"{old['mean_bits_per_worker']:,.0f} bits/worker, reached {old['reached']}/{old['seeds']}")
+              f"{old['mean_bits_per_worker']:,.0f} bits/worker on the same seeds, "
+              f"reached {old['reached']}/{old['seeds']}")
     print(f"decision: {result.decision} ({section['reason']})")
     print(f"config: {result.written}" if result.written else "config: not written (the previous file is kept)")
     return result.exit_code

@@ -30,7 +30,8 @@ from .report import write_report
 from .errors import EXIT, InputError
 from .search import SYNCED, Candidate, open_storage
 from .select import Evaluation, evaluate, select
-from .tune import _config_doc, _plain, _Progress, prepare, respace, run_search, trial_counts, write_summary
+from .progress import Progress
+from .tune import _config_doc, _plain, objective_unit, prepare, respace, run_search, trial_counts, write_summary
 
 __all__ = ["RetuneResult", "retune", "drift_table", "decide", "HISTORY_FIELDS", "history_rows"]
 
@@ -92,9 +93,12 @@ def decide(new: Evaluation, old: Evaluation, *, margin: float = MARGIN, level: f
     else:
         p = float(stats.ttest_rel(new.costs, old.costs, alternative="less").pvalue)
     gain = 1.0 - new.mean_cost / old.mean_cost
+    # The same quantity the selection reports: mean cost on the fresh (validation) seeds, not the
+    # search seeds the progress lines show while trials run.
+    seeds = f"on the {len(new.runs)} fresh seeds"
     if gain > margin and p < level:
-        return "replaced", f"{gain:.1%} fewer {unit} (paired t-test p = {p:.3g} < {level})", p
-    return "kept", (f"{gain:.1%} fewer {unit} is not enough (needs > {margin:.0%} and p < {level}; "
+        return "replaced", f"{gain:.1%} fewer {unit} {seeds} (paired t-test p = {p:.3g} < {level})", p
+    return "kept", (f"{gain:.1%} fewer {unit} {seeds} is not enough (needs > {margin:.0%} and p < {level}; "
                     f"p = {p:.3g})"), p
 
 
@@ -198,7 +202,7 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
         raise InputError("--previous: the config has no constants section (write it with bittune tune)")
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
     storage_url = storage or str(run_dir / "study.journal")
-    log = progress or _Progress(total=trials or 0)
+    log = progress or Progress(total=trials or 0)
     first = prepare(job_path, {"jobs": jobs, "seed": seed}, log, allow_code=allow_code)
     ws, spec = first.ws, first.job.search
     dims = (prev.dimension or -1, ws.problem.dim)
@@ -221,11 +225,11 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
             overrides.update(_narrowed(spec, prev_cand, first.space))
         warm_cands = [prev_cand] + _previous_best(prev, previous)
     prep = respace(first, overrides)
-    log.total = prep.job.search.trials
+    log.total, log.unit = prep.job.search.trials, objective_unit(prep.job)
     warm = _warm_params(prep.space, warm_cands)
     study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, warm=warm)
     log.note("select: validating tonight's best and the previous config on the same fresh seeds")
-    selection = select(ws, prep.space, study, prep.network)
+    selection = select(ws, prep.space, study, prep.network, log=log)
     if new_problem:
         decision, reason, p = ("replaced", "new problem (dimension or worker count changed)", math.nan)
         old_eval = None
@@ -234,6 +238,9 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
     else:
         old_eval = evaluate(ws, [prev_cand], selection.seeds, prep.network)[0]
         decision, reason, p = decide(selection.winner, old_eval, margin=margin, level=level)
+        log.note(f"select: on the {len(selection.seeds)} fresh seeds tonight's best needs "
+                 f"{selection.winner.mean_cost:,.4g} {objective_unit(prep.job)} (the search's best above is on the search "
+                 f"seeds), the previous config {old_eval.mean_cost:,.4g}")
     section = {
         "decision": decision, "reason": reason, "p_value": None if math.isnan(p) else p,
         "margin": margin, "level": level, "drift_size": size, "new_problem": new_problem,

@@ -191,21 +191,41 @@ def _batches(ws, candidates: list[Candidate], seeds: list[int]) -> list[tuple[li
     return out
 
 
-def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None) -> list[Evaluation]:
-    """Run each candidate on ``seeds``; candidates of one method and compressor share a batch."""
-    return start_evaluate(ws, candidates, seeds, network, jobs=1)()
+class _Ticker:
+    """A simulate() monitor that reports finished trajectories of one batch to a progress task."""
+
+    def __init__(self, task, offset: int, size: int):
+        self.task, self.offset, self.size = task, offset, size
+
+    def __call__(self, k, index, bits, metric) -> bool:
+        self.task.update(self.offset + self.size - len(index), extra=f"round {k}")
+        return False  # never stops the batch
 
 
-def start_evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, *, jobs: int):
+def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, task=None) -> list[Evaluation]:
+    """Run each candidate on ``seeds``; candidates of one method and compressor share a batch.
+    ``task`` (a :class:`bittune.progress.Task`) hears of every finished trajectory."""
+    return start_evaluate(ws, candidates, seeds, network, jobs=1, task=task)()
+
+
+def start_evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, *, jobs: int, task=None):
     """:func:`evaluate` started in another process when ``jobs`` > 1 (:func:`bittune.parallel.start_batch`);
-    returns a function that waits for the evaluations and returns them."""
-    pending = [(idx, start_batch(ws.problem, kwargs, jobs=jobs)) for idx, kwargs in _batches(ws, candidates, seeds)]
-    S = len(seeds)
+    returns a function that waits for the evaluations and returns them. ``task`` is told of finished
+    trajectories round by round in this process, and of a whole batch when it comes back from another."""
+    S, pending, offset = len(seeds), [], 0
+    for idx, kwargs in _batches(ws, candidates, seeds):
+        size = len(idx) * S
+        if task is not None and jobs == 1:
+            kwargs = dict(kwargs, monitor=_Ticker(task, offset, size))
+        pending.append((idx, offset + size, start_batch(ws.problem, kwargs, jobs=jobs)))
+        offset += size
 
     def result() -> list[Evaluation]:
         out: list[Evaluation | None] = [None] * len(candidates)
-        for idx, wait in pending:
+        for idx, end, wait in pending:
             runs = wait()
+            if task is not None:
+                task.update(end)
             for j, i in enumerate(idx):
                 out[i] = Evaluation(candidates[i], runs[j * S:(j + 1) * S], network)
         return out
@@ -213,10 +233,10 @@ def start_evaluate(ws, candidates: list[Candidate], seeds: list[int], network=No
     return result
 
 
-def _start_baseline(ws, space: Space, method: str, seeds: list[int], network):
+def _start_baseline(ws, space: Space, method: str, seeds: list[int], network, task=None):
     """The theory setting of ``method`` at its cheapest predicted density, started (see start_evaluate)."""
     cand = space.candidate(method, space.theory_density(method))
-    return start_evaluate(ws, [cand], seeds, network, jobs=ws.job.search.jobs)
+    return start_evaluate(ws, [cand], seeds, network, jobs=ws.job.search.jobs, task=task)
 
 
 def gd_ladder(space: Space) -> list[Candidate]:
@@ -251,8 +271,12 @@ def finalists(study, space: Space, *, count: int) -> list[Candidate]:
     return out
 
 
-def select(ws, space: Space, study, network=None) -> Selection:
-    """Validate the finalists, back the winner's step off, run the theory baseline."""
+def select(ws, space: Space, study, network=None, log=None) -> Selection:
+    """Validate the finalists, back the winner's step off, run the theory and tuned-GD baselines.
+
+    ``log`` (a :class:`bittune.progress.Progress`) shows each phase's finished trajectories."""
+    from .progress import task as start_task
+
     spec = ws.job.search
     seeds = validation_seeds(spec)
     cands = finalists(study, space, count=spec.finalists)
@@ -263,21 +287,40 @@ def select(ws, space: Space, study, network=None) -> Selection:
     # The theory baseline needs only the method: with --jobs > 1 it runs in another process
     # beside the finalists (one method among them) or beside the back-off steps.
     methods = {c.method for c in cands}
+    S, ladder_cands = len(seeds), gd_ladder(space)
+    # Baselines: the theory setting (S), GD's ladder on the search seeds, tuned GD on the fresh seeds (S).
+    # Their trajectories are counted apart: the first two may finish in another process.
+    base_task = start_task(log, "baselines", 2 * S + len(ladder_cands) * spec.seeds, "trajectories")
+    counted = {"theory": 0, "ladder": 0}
+
+    class _Part:  # one baseline's share of the baselines' task
+        def __init__(self, key):
+            self.key = key
+
+        def update(self, done, best=None, extra=""):
+            counted[self.key] = done
+            base_task.update(sum(counted.values()), extra=extra)
+
     pending_baseline = None
     if len(methods) == 1:
-        pending_baseline = _start_baseline(ws, space, next(iter(methods)), seeds, network)
+        pending_baseline = _start_baseline(ws, space, next(iter(methods)), seeds, network, task=_Part("theory"))
     # Tuned GD: all ladder steps x search seeds in one batch, beside the finalists when --jobs > 1.
-    pending_ladder = start_evaluate(ws, gd_ladder(space), search_seeds(spec), network, jobs=spec.jobs)
-    evals = evaluate(ws, cands, seeds, network)
+    pending_ladder = start_evaluate(ws, ladder_cands, search_seeds(spec), network, jobs=spec.jobs,
+                                    task=_Part("ladder"))
+    val_task = start_task(log, "validation", len(cands) * S, "trajectories")
+    evals = evaluate(ws, cands, seeds, network, task=val_task)
+    val_task.finish()
     ok = [e for e in evals if e.all_reached]
     winner = min(ok, key=lambda e: e.mean_cost) if ok else min(
         evals, key=lambda e: (-sum(r.reached for r in e.runs), e.mean_cost))
     if pending_baseline is None:
-        pending_baseline = _start_baseline(ws, space, winner.candidate.method, seeds, network)
+        pending_baseline = _start_baseline(ws, space, winner.candidate.method, seeds, network, task=_Part("theory"))
     backoff: list[Evaluation] = []
     if winner.all_reached and spec.backoff_steps > 0:
         steps = [winner.candidate.step_size / spec.backoff_factor ** j for j in range(1, spec.backoff_steps + 1)]
-        backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds, network)
+        back_task = start_task(log, "back-off", len(steps) * S, "trajectories")
+        backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds, network, task=back_task)
+        back_task.finish()
         limit = winner.mean_cost * (1.0 + spec.backoff_tolerance)
         chosen = winner
         for e in backoff:
@@ -286,7 +329,9 @@ def select(ws, space: Space, study, network=None) -> Selection:
             chosen = e
         winner = chosen
     ladder = pending_ladder()
-    gd = evaluate(ws, [_best_rung(ws, ladder, network)], seeds, network)[0]
+    counted["gd"] = 0
+    gd = evaluate(ws, [_best_rung(ws, ladder, network)], seeds, network, task=_Part("gd"))[0]
     baseline = pending_baseline()[0]
+    base_task.finish()
     return Selection(winner=winner, baseline=baseline, finalists=evals, backoff=backoff, seeds=seeds, gd=gd,
                      gd_ladder=ladder)

@@ -10,8 +10,6 @@ restarted with the same run directory resumes from that storage.
 from __future__ import annotations
 
 import datetime as _dt
-import math
-import sys
 import threading
 import time
 from dataclasses import dataclass
@@ -26,6 +24,7 @@ from .config import SEED_DIGITS, UNITS, sig, write_config
 from .errors import EXIT, InputError
 from .job import Job, data_digest, load_job
 from .probe import probe_workspace
+from .progress import Progress
 from .report import write_report
 from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials, mask_url, open_storage,
                      open_study, run_trials, search_seeds)
@@ -44,6 +43,11 @@ class TuneResult:
     storage: str
     trials: dict
     report: dict | None = None  # paths written by the report
+
+
+def objective_unit(job: Job) -> str:
+    """How a trial's value reads in progress lines."""
+    return "s simulated" if job.objective == "seconds" else "bits/worker"
 
 
 def study_name(job: Job) -> str:
@@ -208,11 +212,11 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
     storage_url = storage or str(run_dir / "study.journal")
     job0 = load_job(job_path)
-    log = progress or _Progress(total=trials or job0.search.trials)
+    log = progress or Progress(total=trials or job0.search.trials, unit=objective_unit(job0))
     prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log, allow_code=allow_code)
     study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only)
     log.note("select: validating the best candidates on fresh seeds")
-    selection = select(prep.ws, prep.space, study, prep.network)
+    selection = select(prep.ws, prep.space, study, prep.network, log=log)
     config = _config_doc(prep, selection, study.study_name, storage_url, output)
     write_config(output, config)
     write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
@@ -454,38 +458,6 @@ def _plain(doc):
     if isinstance(doc, (np.floating, np.integer, np.bool_)):
         return doc.item()
     return doc
-
-
-class _Progress:
-    """Progress on stderr: one rewritten line on a terminal, plain lines otherwise."""
-
-    def __init__(self, total: int, stream=None):
-        self.total = total
-        self.stream = stream or sys.stderr
-        self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
-        self.start = time.monotonic()
-        self._last_line = 0.0
-        self._open = False
-
-    def note(self, text: str) -> None:
-        if self._open:
-            self.stream.write("\n")
-            self._open = False
-        self.stream.write(f"[bittune] {text}\n")
-        self.stream.flush()
-
-    def trials(self, done: int, best: float | None, pruned: int, failed: int) -> None:
-        elapsed = time.monotonic() - self.start
-        best_txt = f"{best:,.0f} bits/worker" if best is not None and math.isfinite(best) else "none yet"
-        line = (f"[bittune] trials {done}/{self.total} (pruned {pruned}, failed {failed}), "
-                f"best {best_txt}, {elapsed:.0f} s")
-        if self.tty:
-            self.stream.write("\r" + line + " " * 8)
-            self._open = True
-        elif time.monotonic() - self._last_line >= 10.0 or done >= self.total:
-            self.stream.write(line + "\n")
-            self._last_line = time.monotonic()
-        self.stream.flush()
 
 
 class _Watcher(threading.Thread):
