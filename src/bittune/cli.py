@@ -228,7 +228,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
                     "storage": cfg["provenance"]["storage"], "trials": result.trials,
                     "method": cfg["method"], "compressor": cfg["compressor"], "step_size": cfg["step_size"],
                     "sync_probability": cfg.get("sync_probability"), "shift_rate": cfg.get("shift_rate"),
-                    "expected": exp,
+                    "expected": exp, "baseline": cfg.get("baseline"), "gains": cfg.get("gains"),
                     "finalists": [e.summary() for e in result.selection.finalists],
                     "backoff": [e.summary() for e in result.selection.backoff]})
     else:
