@@ -74,3 +74,16 @@ def test_a_terminal_gets_one_rewritten_line(clock):
         task.update(done)
     text = out.getvalue()
     assert text.count("\r") == 3 and text.endswith("\n") and text.count("\n") == 1
+
+
+def test_parts_of_a_task_add_up(clock):
+    out = io.StringIO()
+    task = Progress(stream=out).task("baselines", 10, "trajectories")
+    a, b = task.part(), task.part()
+    a.update(3)
+    clock.now += 6.0
+    b.update(4)  # 3 + 4 of 10
+    clock.now += 6.0
+    a.update(6)  # 6 + 4: the last line
+    lines = out.getvalue().splitlines()
+    assert [ln.split(": ")[1].split(" ")[0] for ln in lines] == ["3/10", "7/10", "10/10"]

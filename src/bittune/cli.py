@@ -29,28 +29,12 @@ def _load_job(args: argparse.Namespace):
     return replace(load_job(args.job), allow_code=bool(getattr(args, "allow_code", False)))
 
 
-def _swapped(config_path: str, job_path: str) -> None:
-    """Exit 2 with a hint when CONFIG is a job file or --job a config (the two given the other way round)."""
-    from ._yaml import load_yaml
-
-    for path, want, other in ((config_path, "config", "job"), (job_path, "job", "config")):
-        try:
-            doc = load_yaml(path)
-        except InputError:
-            continue  # the loader itself reports it below, with its line
-        is_config = isinstance(doc, dict) and "bittune_config" in doc
-        is_job = isinstance(doc, dict) and "data" in doc and not is_config
-        if (want == "config" and is_job) or (want == "job" and is_config):
-            raise InputError(f"{path}: looks like a {other} file; did you swap the config and the job? "
-                             f"usage: bittune replay CONFIG --job JOB")
-
-
 def _cmd_replay(args: argparse.Namespace) -> int:
     from .config import load_config, sig
-    from .replay import config_seeds, replay, stored_reference, summarize
+    from .replay import check_not_swapped, config_seeds, replay, stored_reference, summarize
     from .workspace import open_job
 
-    _swapped(args.config, args.job)
+    check_not_swapped(args.config, args.job)
     cfg = load_config(args.config)
     job = _load_job(args)
     ws = open_job(job, reference=stored_reference(cfg, job))  # f_ref of a loss gap: the config's if same job

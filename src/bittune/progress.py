@@ -40,6 +40,7 @@ class Task:
         self.done, self.best, self.extra = 0, None, ""
         self._shown = -math.inf
         self._first, self._ended = True, False
+        self._parts: list[_Part] = []
 
     def update(self, done: int, best: float | None = None, extra: str = "") -> None:
         self.done, self.extra = int(done), extra
@@ -54,6 +55,13 @@ class Task:
         if self._first or final or now - self._shown >= gap:
             self._first, self._ended, self._shown = False, final, now
             self.owner._line(self.line(now), final=final)
+
+    def part(self) -> "_Part":
+        """A share of this task for work that reports on its own (one batch among several): its
+        ``update(done)`` counts towards this task's done as the sum over the parts."""
+        part = _Part(self)
+        self._parts.append(part)
+        return part
 
     def finish(self) -> None:
         if self.done < self.total:
@@ -72,6 +80,15 @@ class Task:
         if 0 < self.done < self.total:
             text += f", ETA {_duration(elapsed / self.done * (self.total - self.done))}"
         return text
+
+
+class _Part:
+    def __init__(self, task: Task):
+        self.task, self.done = task, 0
+
+    def update(self, done: int, best: float | None = None, extra: str = "") -> None:
+        self.done = int(done)
+        self.task.update(sum(p.done for p in self.task._parts), best, extra)
 
 
 class Progress:
@@ -125,6 +142,9 @@ class _Silent:
 
     def finish(self) -> None:
         pass
+
+    def part(self) -> "_Silent":
+        return self
 
 
 def task(log, name: str, total: int, unit: str, best_label: str = ""):

@@ -19,7 +19,24 @@ from .simulate import Trajectory, simulate
 from .search import SYNCED, stall_window
 from .workspace import Workspace
 
-__all__ = ["replay", "summarize", "stored_reference", "config_seeds"]
+__all__ = ["replay", "summarize", "stored_reference", "config_seeds", "check_not_swapped"]
+
+
+def check_not_swapped(config_path, job_path) -> None:
+    """Exit 2 with a hint when CONFIG is a job file or JOB a config (given the other way round)."""
+    from ._yaml import load_yaml
+    from .errors import InputError
+
+    for path, want, other in ((config_path, "config", "job"), (job_path, "job", "config")):
+        try:
+            doc = load_yaml(path)
+        except InputError:
+            continue  # the loader itself reports it when the file is read for real, with its line
+        is_config = isinstance(doc, dict) and "bittune_config" in doc
+        is_job = isinstance(doc, dict) and "data" in doc and not is_config
+        if (want == "config" and is_job) or (want == "job" and is_config):
+            raise InputError(f"{path}: looks like a {other} file; did you swap the config and the job? "
+                             f"usage: bittune replay CONFIG --job JOB")
 
 
 def config_seeds(cfg: Config) -> list[int] | None:

@@ -291,22 +291,12 @@ def select(ws, space: Space, study, network=None, log=None) -> Selection:
     # Baselines: the theory setting (S), GD's ladder on the search seeds, tuned GD on the fresh seeds (S).
     # Their trajectories are counted apart: the first two may finish in another process.
     base_task = start_task(log, "baselines", 2 * S + len(ladder_cands) * spec.seeds, "trajectories")
-    counted = {"theory": 0, "ladder": 0}
-
-    class _Part:  # one baseline's share of the baselines' task
-        def __init__(self, key):
-            self.key = key
-
-        def update(self, done, best=None, extra=""):
-            counted[self.key] = done
-            base_task.update(sum(counted.values()), extra=extra)
-
     pending_baseline = None
     if len(methods) == 1:
-        pending_baseline = _start_baseline(ws, space, next(iter(methods)), seeds, network, task=_Part("theory"))
+        pending_baseline = _start_baseline(ws, space, next(iter(methods)), seeds, network, task=base_task.part())
     # Tuned GD: all ladder steps x search seeds in one batch, beside the finalists when --jobs > 1.
     pending_ladder = start_evaluate(ws, ladder_cands, search_seeds(spec), network, jobs=spec.jobs,
-                                    task=_Part("ladder"))
+                                    task=base_task.part())
     val_task = start_task(log, "validation", len(cands) * S, "trajectories")
     evals = evaluate(ws, cands, seeds, network, task=val_task)
     val_task.finish()
@@ -314,7 +304,8 @@ def select(ws, space: Space, study, network=None, log=None) -> Selection:
     winner = min(ok, key=lambda e: e.mean_cost) if ok else min(
         evals, key=lambda e: (-sum(r.reached for r in e.runs), e.mean_cost))
     if pending_baseline is None:
-        pending_baseline = _start_baseline(ws, space, winner.candidate.method, seeds, network, task=_Part("theory"))
+        pending_baseline = _start_baseline(ws, space, winner.candidate.method, seeds, network,
+                                           task=base_task.part())
     backoff: list[Evaluation] = []
     if winner.all_reached and spec.backoff_steps > 0:
         steps = [winner.candidate.step_size / spec.backoff_factor ** j for j in range(1, spec.backoff_steps + 1)]
@@ -329,8 +320,7 @@ def select(ws, space: Space, study, network=None, log=None) -> Selection:
             chosen = e
         winner = chosen
     ladder = pending_ladder()
-    counted["gd"] = 0
-    gd = evaluate(ws, [_best_rung(ws, ladder, network)], seeds, network, task=_Part("gd"))[0]
+    gd = evaluate(ws, [_best_rung(ws, ladder, network)], seeds, network, task=base_task.part())[0]
     baseline = pending_baseline()[0]
     base_task.finish()
     return Selection(winner=winner, baseline=baseline, finalists=evals, backoff=backoff, seeds=seeds, gd=gd,
