@@ -146,3 +146,26 @@ def test_every_long_phase_reports_done_over_total(tuned):
         assert mine, phase
         done, total = mine[-1].split(": ")[1].split(" ")[0].split("/")
         assert done == total
+
+
+def test_gd_ladder_is_the_search_ladder_clipped_to_the_range(cancer):
+    from types import SimpleNamespace
+
+    from bittune.compressors import make_compressor
+    from bittune.constants import Constants
+    from bittune.search import SEED_LADDER, Space
+    from bittune.select import gd_ladder
+    from bittune.theory import theory_point
+
+    per, L = cancer.smoothness_bounds()
+    consts = Constants(n_workers=cancer.n_workers, dim=cancer.dim, L=L, L_workers=per, L_plus=L, L_pm=0.1,
+                       delta0=0.7, grad_sq0=1.0, local_grad_sq0=1.0, heterogeneity0=0.1)
+    spec = SimpleNamespace(methods=["marina"], compressors=["rand_k"], levels_range=(1, 16), step_range=(0.5, 4096))
+    space = Space(spec, consts, target=1e-3)
+    gd_step = theory_point("gd", make_compressor("identity", cancer.dim), consts, target=1e-3).step_size
+    full = gd_ladder(space)
+    assert [c.step_mult for c in full] == list(SEED_LADDER)
+    assert [c.step_size for c in full] == pytest.approx([m * gd_step for m in SEED_LADDER], rel=1e-15)
+    assert all(c.method == "gd" and c.compressor == {"name": "identity"} for c in full)
+    # A retune's narrowed range belongs to its previous method; the job's own range is passed instead.
+    assert [c.step_mult for c in gd_ladder(space, (2.0, 20.0))] == [2.0, 4.0, 16.0, 20.0]

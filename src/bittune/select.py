@@ -239,9 +239,11 @@ def _start_baseline(ws, space: Space, method: str, seeds: list[int], network, ta
     return start_evaluate(ws, [cand], seeds, network, jobs=ws.job.search.jobs, task=task)
 
 
-def gd_ladder(space: Space) -> list[Candidate]:
-    """Uncompressed GD at the search's seed ladder of steps over its theory step (clipped, distinct)."""
-    mults = sorted({min(max(m, space.spec.step_range[0]), space.spec.step_range[1]) for m in SEED_LADDER})
+def gd_ladder(space: Space, step_range=None) -> list[Candidate]:
+    """Uncompressed GD at the search's seed ladder of steps over its theory step, clipped to ``step_range``
+    (default the space's; a retune passes the job's own, since its narrowed range belongs to another method)."""
+    lo, hi = step_range or space.spec.step_range
+    mults = sorted({min(max(m, lo), hi) for m in SEED_LADDER})
     return [space.candidate("gd", {"name": "identity"}, step_mult=m) for m in mults]
 
 
@@ -287,7 +289,7 @@ def select(ws, space: Space, study, network=None, log=None) -> Selection:
     # The theory baseline needs only the method: with --jobs > 1 it runs in another process
     # beside the finalists (one method among them) or beside the back-off steps.
     methods = {c.method for c in cands}
-    S, ladder_cands = len(seeds), gd_ladder(space)
+    S, ladder_cands = len(seeds), gd_ladder(space, ws.job.search.step_range)  # the job's range, not a retune's
     # Baselines: the theory setting (S), GD's ladder on the search seeds, tuned GD on the fresh seeds (S).
     # Their trajectories are counted apart: the first two may finish in another process.
     base_task = start_task(log, "baselines", 2 * S + len(ladder_cands) * spec.seeds, "trajectories")
