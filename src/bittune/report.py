@@ -35,7 +35,8 @@ from ._yaml import atomic_write_text
 from .errors import InputError
 
 __all__ = ["write_report", "report_data", "curve_band", "search_history", "step_response",
-           "worker_smoothness", "best_per_method", "importance", "varying_params", "why", "why_sentence", "target_info", "GRID_POINTS", "CAUTION"]
+           "worker_smoothness", "best_per_method", "importance", "varying_params", "why", "why_sentence",
+           "target_info", "GRID_POINTS", "CAUTION"]
 
 #: Points of the common log-spaced bits grid of the convergence band.
 GRID_POINTS = 200
@@ -256,7 +257,12 @@ def why(summary: dict, study) -> dict:
 
 
 def why_sentence(d: dict) -> str:
-    """One sentence: why this config, in bits per round x rounds = total."""
+    """One sentence: why this config, in bits per round x rounds = total (rounded as the config's figures)."""
+    from .config import sig
+
+    d = {k: ({**v, "bits": sig(v["bits"]), "rounds": sig(v["rounds"])} if isinstance(v, dict) and "bits" in v
+             else v) for k, v in d.items()}
+
     def part(r: dict) -> str:
         seeds = "" if r["seeds"] == "fresh" else " on the search seeds"
         return (f"{r['label']} ({_bits(r['bits_per_round'])} bits per round × {_fmt(r['rounds'], '.4g')} rounds = "
@@ -544,14 +550,16 @@ def _interval_text(gain: dict | None) -> str:
 
 
 def _gd_text(sel: dict) -> str:
+    from .config import sig
+
     g, gain = sel["gd"], sel["gains"]["over_tuned_gd"]
     ci = gain.get("interval")
     return (f"Gain over tuned GD: {'at least ' if gain['lower_bound'] else ''}{gain['ratio']:.3g}× fewer uplink bits "
-            + (f"({gain['level']:.0%} paired percentile bootstrap interval over the fresh seeds {ci[0]:.3g}–{ci[1]:.3g}; "
-               "Efron & Tibshirani 1993) " if ci else "")
+            + (f"({gain['level']:.0%} paired percentile bootstrap interval over the fresh seeds "
+               f"{ci[0]:.3g}–{ci[1]:.3g}; Efron & Tibshirani 1993) " if ci else "")
             + f"than uncompressed GD with its step tuned over the search's step ladder (step {_fmt(g['step_size'])}: "
-            f"{_bits(g['mean_bits_per_worker'])} bits per worker in {_fmt(g['mean_rounds'], '.4g')} rounds, reached on "
-            f"{g['reached']} of {g['seeds']} seeds).")
+            f"{_bits(sig(g['mean_bits_per_worker']))} bits per worker in {_fmt(g['mean_rounds'], '.4g')} rounds, "
+            f"reached on {g['reached']} of {g['seeds']} seeds).")
 
 
 def _markdown(title: str, doc: list, files: dict) -> str:

@@ -239,8 +239,8 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
         old_eval = evaluate(ws, [prev_cand], selection.seeds, prep.network)[0]
         decision, reason, p = decide(selection.winner, old_eval, margin=margin, level=level)
         log.note(f"select: on the {len(selection.seeds)} fresh seeds tonight's best needs "
-                 f"{selection.winner.mean_cost:,.4g} {objective_unit(prep.job)} (the search's best above is on the search "
-                 f"seeds), the previous config {old_eval.mean_cost:,.4g}")
+                 f"{selection.winner.mean_cost:,.4g} {objective_unit(prep.job)} (the search's best above is on "
+                 f"the search seeds), the previous config {old_eval.mean_cost:,.4g}")
     section = {
         "decision": decision, "reason": reason, "p_value": None if math.isnan(p) else p,
         "margin": margin, "level": level, "drift_size": size, "new_problem": new_problem,
