@@ -79,6 +79,19 @@ def test_config_for_another_dimension_exits_2(demo, tmp_path, capsys):
     assert "dimension" in capsys.readouterr().err
 
 
+def test_swapped_config_and_job_exit_2_and_say_so(demo, capsys):
+    code = main(["replay", str(demo / "job.yaml"), "--job", str(demo / "config.yaml")])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert "job.yaml: looks like a job file; did you swap" in err
+
+
+def test_a_config_given_as_the_job_exits_2(demo, capsys):
+    code = main(["replay", str(demo / "config.yaml"), "--job", str(demo / "config.yaml")])
+    assert code == 2
+    assert "looks like a config file; did you swap" in capsys.readouterr().err
+
+
 def test_missing_job_file_exits_2(demo, tmp_path, capsys):
     assert main(["replay", str(demo / "config.yaml"), "--job", str(tmp_path / "nope.yaml")]) == 2
     assert "nope.yaml" in capsys.readouterr().err

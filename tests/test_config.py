@@ -147,7 +147,7 @@ ERRORS = [
     (dict(compressor=[1]), "compressor: must be a mapping with a name, got [1]"),
     (dict(compressor={"k": 3}), "compressor.name: required"),
     (dict(compressor={"name": "randk", "k": 3}),
-     "compressor.name: must be one of identity, rand_k, top_k, dither, natural, natural_dither, perm_k, got 'randk'"),
+     "compressor.name: must be one of identity, rand_k, top_k, dither, natural, natural_dither, perm_k, got 'randk' (did you mean 'rand_k'?)"),
     (dict(compressor={"name": "rand_k"}), "compressor.k: required"),
     (dict(compressor={"name": "top_k", "k": 0}), "compressor.k: must be an integer >= 1, got 0"),
     (dict(compressor={"name": "top_k", "k": True}), "compressor.k: must be an integer >= 1, got True"),
@@ -206,3 +206,15 @@ def test_check_config_fits():
         check_config_fits(free, dimension=4, workers=12, source="c")
     with pytest.warns(UserWarning, match="problem.workers: the config was tuned for 12 workers"):
         check_config_fits(cfg, dimension=123, workers=20, source="c")
+
+
+def test_configs_written_before_the_baseline_gains_and_units_sections_still_load():
+    from pathlib import Path
+
+    old = load_config(Path(__file__).resolve().parents[1] / "configs" / "frost-marina.yaml")
+    assert old.method == "marina" and "gains" not in old.extra
+    doc = {"bittune_config": 1, "method": "gd", "compressor": "identity", "step_size": 0.5,
+           "baseline": {"method": "gd"}, "gains": {"over_tuned_gd": {"ratio": 2.0}}, "units": {"step_size": "x"}}
+    assert set(parse_config(doc, source="c.yaml").extra) == {"baseline", "gains", "units"}
+    with pytest.raises(InputError, match="gain: unknown key \\(did you mean 'gains'\\?\\)"):
+        parse_config({**doc, "gain": {}}, source="c.yaml")

@@ -251,7 +251,17 @@ ERRORS = [
     (dict(objective="joules"), "objective: must be one of bits, seconds, got 'joules'"),
     (dict(network={"uplink_bandwidth": 0}), "network.uplink_bandwidth: must be a number > 0, got 0"),
     (dict(search={"methods": ["marina", "sgd"]}),
-     "search.methods: must be a list of distinct values from gd, dcgd, diana, marina, pp_marina, vr_marina, ef21, got ['marina', 'sgd']"),
+     "search.methods: must be a list of distinct values from gd, dcgd, diana, marina, pp_marina, vr_marina, ef21, got ['marina', 'sgd'] "
+     "(did you mean 'gd' for 'sgd'?)"),
+    # A misspelt name gets the closest known one (difflib.get_close_matches).
+    (dict(search={"methods": ["marnia", "ef21"]}),
+     "search.methods: must be a list of distinct values from gd, dcgd, diana, marina, pp_marina, vr_marina, ef21, "
+     "got ['marnia', 'ef21'] (did you mean 'marina' for 'marnia'?)"),
+    (dict(search={"compressors": ["rand_k", "topk"]}),
+     "search.compressors: must be a list of distinct values from identity, rand_k, top_k, dither, natural, "
+     "natural_dither, perm_k, got ['rand_k', 'topk'] (did you mean 'top_k' for 'topk'?)"),
+    (dict(workers={"count": 3, "split": "by_lable"}),
+     "workers.split: must be one of iid, by_label, dirichlet, column, got 'by_lable' (did you mean 'by_label'?)"),
     (dict(search={"step_range": [8, 2]}),
      "search.step_range: must be a pair [low, high] with low <= high, each a number > 0, got [8, 2]"),
     (dict(data="nope.svm"), "data.path: file not found: {folder}/nope.svm"),

@@ -252,7 +252,8 @@ def test_tune_cli_writes_the_loss_gap_target_and_f_ref(tmp_path, capsys, monkeyp
     from bittune.search import open_storage
     from bittune.tune import worker_main
 
-    prov = cfg.extra["provenance"]
+    prov = dict(cfg.extra["provenance"])
+    prov["storage"] = str(tmp_path / prov["storage"])  # written relative to the config's folder
     study = optuna.load_study(study_name=prov["study"], storage=open_storage(prov["storage"]))
     assert study.user_attrs["constants"]["extra"]["f_ref"]["value"] == f_ref["value"]
 

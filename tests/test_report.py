@@ -23,7 +23,7 @@ from optuna.trial import TrialState, create_trial
 
 from bittune.errors import InputError
 from bittune.report import (GRID_POINTS, CAUTION, best_per_method, curve_band, importance, search_history,
-                            step_response, worker_smoothness, write_report)
+                            step_response, why, why_sentence, worker_smoothness, write_report)
 from bittune.search import open_storage
 from bittune.tune import tune
 from conftest import Quiet
@@ -191,6 +191,8 @@ def test_importance_ranks_the_parameter_that_matters_and_admits_too_few_trials()
     # most of the total (the 0.5 threshold is ours, common practice, no source).
     assert d["params"][0] == "diana.step_mult" and d["importance"][0] > 0.5
     assert sum(d["importance"]) == pytest.approx(1.0, rel=1e-12)  # shares of the total
+    # Only what varied: the method is fixed in this study, so it is not a bar.
+    assert set(d["params"]) == {"diana.step_mult", "diana.shift_mult"}
     one = optuna.create_study(direction="minimize")
     one.add_trial(study.trials[0])
     for small in (one, optuna.create_study(direction="minimize")):
@@ -225,6 +227,27 @@ search:
 """)
     tune(folder / "job.yaml", output=folder / "c.yaml", progress=Quiet())
     return folder
+
+
+@pytest.mark.slow
+def test_the_report_opens_with_why_this_config(run):
+    import json as _json
+
+    paths = write_report(run / "c.run")
+    summary = _json.loads((run / "c.run" / "summary.json").read_text())
+    study = optuna.load_study(study_name=summary["study"], storage=open_storage(str(run / "c.run" / "study.journal")))
+    d = why(summary, study)
+    w, gd = summary["selection"]["winner"], summary["selection"]["gd"]
+    # bits per round x rounds = total, each from the selection's means on the fresh seeds
+    assert d["winner"]["bits"] == w["mean_bits_per_worker"] and d["winner"]["rounds"] == w["mean_rounds"]
+    assert d["winner"]["bits_per_round"] == pytest.approx(w["mean_bits_per_worker"] / w["mean_rounds"], rel=1e-12)
+    assert d["gd"]["bits"] == gd["mean_bits_per_worker"]
+    # GD sends 32 d bits per round (one dense float32 message; README, What is simulated and counted)
+    assert d["gd"]["bits_per_round"] == pytest.approx(32 * summary["problem"]["dimension"], rel=1e-12)
+    assert d["runner_up"] is not None and not d["runner_up"]["label"].startswith(w["method"] + " ")
+    md = paths["markdown"].read_text().split("\n\n")
+    assert md[1] == why_sentence(d) and md[1].startswith(f"Why this config: {w['method']} + {w['compressor']}")
+    assert "fewer bits than tuned GD" in md[1]
 
 
 @pytest.mark.slow

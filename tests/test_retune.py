@@ -130,7 +130,7 @@ def test_changed_dimension_falls_back_to_full_tuning(night0, tmp_path):
 
 def test_output_equal_to_previous_is_left_alone_when_kept(night0, tmp_path):
     folder, job = night0
-    prod = tmp_path / "prod.yaml"
+    prod = folder / "prod-same.yaml"  # beside the original: its provenance paths (relative to it) still hold
     prod.write_text((folder / "prod.yaml").read_text())
     before = prod.read_bytes()
     result = retune(job, previous=prod, output=prod, trials=10, progress=Quiet())
@@ -169,6 +169,7 @@ def test_decision_rule_needs_margin_and_significance():
     assert decide(noisy, old)[0] == "kept"
     decision, reason, p = decide(better, old)
     assert decision == "replaced" and p < 0.05
+    assert "fewer bits on the 5 fresh seeds" in reason  # the quantity named: fresh, not search, seeds
     # Reference p-value from scipy directly.
     from scipy import stats
 

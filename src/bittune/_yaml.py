@@ -368,5 +368,23 @@ def check_mapping(
         if ok:
             values[key] = normalised
         else:
-            problems.append(f"{prefix}{key}: must be {param.describe()}, got {show(value)}")
+            problems.append(f"{prefix}{key}: must be {param.describe()}, got {show(value)}"
+                            + close_choices(param, value))
     return values
+
+
+def close_choices(param: Param, value: Any) -> str:
+    """`` (did you mean 'marina'?)`` for a misspelt name of a choice or choices key, else ''."""
+    if param.kind not in ("choice", "choices"):
+        return ""
+    given = [value] if isinstance(value, str) else value if isinstance(value, list) else []
+    hints = []
+    for v in given:
+        if isinstance(v, str) and v not in param.options:
+            close = difflib.get_close_matches(v, param.options, n=1)
+            hints += [(v, close[0])] if close else []
+    if not hints:
+        return ""
+    if isinstance(value, str):
+        return f" (did you mean {hints[0][1]!r}?)"
+    return " (did you mean " + ", ".join(f"{c!r} for {v!r}" for v, c in hints) + "?)"

@@ -30,14 +30,19 @@ def _load_job(args: argparse.Namespace):
 
 
 def _cmd_replay(args: argparse.Namespace) -> int:
-    from .config import load_config
-    from .replay import replay, stored_reference, summarize
+    from .config import load_config, sig
+    from .replay import check_not_swapped, config_seeds, replay, stored_reference, summarize
     from .workspace import open_job
 
+    check_not_swapped(args.config, args.job)
     cfg = load_config(args.config)
     job = _load_job(args)
     ws = open_job(job, reference=stored_reference(cfg, job))  # f_ref of a loss gap: the config's if same job
-    runs = replay(ws, cfg, seeds=range(args.seed, args.seed + args.seeds), source=str(args.config))
+    seeds = config_seeds(cfg) if args.seeds is None and args.seed is None else None
+    if seeds is None:  # asked for, or a config without validation seeds: S..S+N-1 (default 0..4)
+        first = 0 if args.seed is None else args.seed
+        seeds = list(range(first, first + (5 if args.seeds is None else args.seeds)))
+    runs = replay(ws, cfg, seeds=seeds, source=str(args.config))
     doc = summarize(runs, loss_ref=ws.loss_ref)
     doc["config"] = str(args.config)
     doc["problem"] = ws.summary()
@@ -48,12 +53,14 @@ def _cmd_replay(args: argparse.Namespace) -> int:
         print(f"{cfg.method} + {comp} {_params(cfg.compressor)} at step {cfg.step_size:g} on "
               f"{ws.problem.n_workers} workers, d = {ws.problem.dim}, "
               f"target {ws.target_text()}")
+        if args.seeds is None and args.seed is None and seeds == config_seeds(cfg):
+            print("seeds: the config's validation seeds (its `expected` figures); --seed/--seeds pick others")
         print(f"{'seed':>6} {'status':<9} {'rounds':>8} {'uplink bits/worker':>20}")
         for r in runs:
             print(f"{r.seed:>6} {r.status:<9} {r.rounds:>8} {r.uplink_bits:>20,.0f}")
-        if "mean_bits_per_worker" in doc:
-            print(f"reached on {doc['reached']} of {len(runs)} seeds; mean {doc['mean_bits_per_worker']:,.0f} "
-                  f"bits/worker (sd {doc['std_bits_per_worker']:,.0f}), mean {doc['mean_rounds']:.1f} rounds")
+        if "mean_bits_per_worker" in doc:  # rounded as a config's `expected` figures are (config.sig)
+            print(f"reached on {doc['reached']} of {len(runs)} seeds; mean {sig(doc['mean_bits_per_worker']):,.0f} "
+                  f"bits/worker (sd {sig(doc['std_bits_per_worker']):,.0f}), mean {sig(doc['mean_rounds']):g} rounds")
         else:
             print(f"reached on none of {len(runs)} seeds")
     return EXIT["ok"] if doc["all_reached"] else EXIT["no_candidate"]
@@ -205,7 +212,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
                     "storage": cfg["provenance"]["storage"], "trials": result.trials,
                     "method": cfg["method"], "compressor": cfg["compressor"], "step_size": cfg["step_size"],
                     "sync_probability": cfg.get("sync_probability"), "shift_rate": cfg.get("shift_rate"),
-                    "expected": exp,
+                    "expected": exp, "baseline": cfg.get("baseline"), "gains": cfg.get("gains"),
                     "finalists": [e.summary() for e in result.selection.finalists],
                     "backoff": [e.summary() for e in result.selection.backoff]})
     else:
@@ -218,6 +225,13 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         print(f"theory baseline ({base['method']} + {base['compressor']}): {base['mean_bits_per_worker']:,.0f} "
               f"bits/worker, reached on {base['reached']} of {len(exp['validation_seeds'])} seeds; "
               f"gain {exp['gain_over_theory']:.1f}x" + (" or more" if exp["gain_is_lower_bound"] else ""))
+        gd = cfg.get("gains", {}).get("over_tuned_gd")
+        if gd:
+            ci = gd["interval"]
+            print(f"tuned GD baseline (step {cfg['baseline']['step_size']:.4g}): "
+                  f"{cfg['baseline']['mean_bits_per_worker']:,.0f} bits/worker; gain {gd['ratio']:.3g}x"
+                  + (f" (95% paired bootstrap interval {ci[0]:.3g}-{ci[1]:.3g})" if ci else "")
+                  + (" or more" if gd["lower_bound"] else ""))
         if exp.get("mean_seconds") is not None:
             print(f"simulated wall clock: {exp['mean_seconds']:.4g} s to target (theory baseline "
                   f"{base['mean_seconds']:.4g} s)")
@@ -269,10 +283,12 @@ def _cmd_retune(args: argparse.Namespace) -> int:
         print(f"{row['quantity']:<40} {row['previous']:>12.4g} {row['current']:>12.4g} {row['ratio']:>8.3f}")
     new, old = section["new"], section["previous"]
     print(f"tonight's best: {new['method']} + {new['compressor']}, step {new['step_size']:.4g}: "
-          f"{new['mean_bits_per_worker']:,.0f} bits/worker, reached {new['reached']}/{new['seeds']}")
+          f"{new['mean_bits_per_worker']:,.0f} bits/worker on {new['seeds']} fresh seeds, "
+          f"reached {new['reached']}/{new['seeds']}")
     if old:
         print(f"previous config: {old['method']} + {old['compressor']}, step {old['step_size']:.4g}: "
-              f"{old['mean_bits_per_worker']:,.0f} bits/worker, reached {old['reached']}/{old['seeds']}")
+              f"{old['mean_bits_per_worker']:,.0f} bits/worker on the same seeds, "
+              f"reached {old['reached']}/{old['seeds']}")
     print(f"decision: {result.decision} ({section['reason']})")
     print(f"config: {result.written}" if result.written else "config: not written (the previous file is kept)")
     return result.exit_code
@@ -316,8 +332,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("replay", help="simulate a config on a job: bits and rounds to target")
     p.add_argument("config", help="config file (YAML) to simulate")
     p.add_argument("--job", required=True, help="job file (YAML)")
-    p.add_argument("--seeds", type=_positive_int, default=5, help="number of random seeds (default 5)")
-    p.add_argument("--seed", type=_nonneg_int, default=0, help="first seed (default 0)")
+    p.add_argument("--seeds", type=_positive_int,
+                   help="number of random seeds (default: the config's validation seeds, else 5)")
+    p.add_argument("--seed", type=_nonneg_int,
+                   help="first seed (default: the config's validation seeds, else 0)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.set_defaults(func=_cmd_replay)
 

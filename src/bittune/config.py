@@ -9,19 +9,22 @@ sync_probability: 0.05      # marina only
 shift_rate: 0.1             # diana only (optional)
 problem: {dimension: 123, workers: 12}
 ```
-Other top-level sections (``target``, ``expected``, ``constants``,
-``provenance``, ``retune``, ...) are free-form and kept verbatim; a key that looks like a typo
+Other top-level sections (``target``, ``expected``, ``baseline``, ``gains``,
+``units``, ``constants``, ``provenance``, ``retune``, ...) are free-form and kept verbatim; a key that looks like a typo
 of a known one is an error. All problems are reported together, key paths named.
 """
 
 from __future__ import annotations
 
 import difflib
+import math
 import os
 import warnings
 from copy import deepcopy
 from dataclasses import dataclass, field
 from typing import Any
+
+import numpy as np
 
 from bittune._yaml import (
     REQUIRED, Param, atomic_write_text, check_mapping, dump_yaml, key_text, load_yaml, show, unknown_key,
@@ -30,7 +33,7 @@ from bittune.errors import InputError
 
 __all__ = [
     "Config", "METHODS", "COMPRESSORS", "FORMAT_VERSION", "parse_config", "load_config",
-    "config_to_dict", "write_config", "check_config_fits",
+    "config_to_dict", "write_config", "check_config_fits", "sig", "UNITS", "REPORTED_DIGITS", "SEED_DIGITS",
 ]
 
 FORMAT_VERSION = 1
@@ -64,8 +67,56 @@ METHOD_KEYS = {
 }
 PROBLEM = {"dimension": Param("int", low=1), "workers": Param("int", low=1)}
 #: Free-form sections written by later stages (listed so typos of them are caught).
-FREE_SECTIONS = ("target", "expected", "constants", "provenance", "retune")
+#: ``baseline`` (tuned uncompressed GD), ``gains`` (over it and over theory, with intervals) and ``units``
+#: came later: configs without them load as before.
+FREE_SECTIONS = ("target", "expected", "baseline", "gains", "units", "constants", "provenance", "retune")
 _KNOWN = ["bittune_config", *TOP, "compressor", "problem"]
+#: A section of one's own is a typo only this close to a known key (difflib ratio; 0.75 keeps
+#: `expectd` -> expected (0.93) and lets a `notes` section (0.6 to `units`) through; no source).
+TYPO_CUTOFF = 0.75
+
+
+#: Significant digits of the figures a config reports (expected bits, rounds, gains); the settings a
+#: launcher uses (step size, sync probability, shift rate) stay exact. Four digits: finer than the
+#: seed-to-seed spread of any figure seen so far (common practice, no source).
+REPORTED_DIGITS = 4
+#: Significant digits of per-seed bit counts: exact below 10^6 bits for whole counts, and within half a
+#: bit in 10^6 otherwise.
+SEED_DIGITS = 6
+#: The unit of every key of that name anywhere in a written config (its ``units`` section).
+UNITS = {
+    "step_size": "parameter units per unit of gradient (x <- x - step_size * direction)",
+    "sync_probability": "probability per round of a dense sync round",
+    "shift_rate": "fraction of the gap a shift closes per round",
+    "bits_per_worker": "uplink bits per worker (worker to server), one entry per seed",
+    "mean_bits_per_worker": "uplink bits per worker (worker to server) to reach the target",
+    "std_bits_per_worker": "uplink bits per worker (sample standard deviation over the seeds)",
+    "rounds": "rounds (one step of the method each), one entry per seed",
+    "mean_rounds": "rounds to reach the target",
+    "std_rounds": "rounds (sample standard deviation over the seeds)",
+    "seconds": "seconds simulated under the job's network model, one entry per seed",
+    "mean_seconds": "seconds simulated under the job's network model to reach the target",
+    "std_seconds": "seconds simulated (sample standard deviation over the seeds)",
+    "mean_gradient_evals_per_worker": "per-sample gradient evaluations per worker",
+    "ratio": "baseline mean cost / chosen mean cost (no unit; the cost is the objective: bits or seconds)",
+    "interval": "the ratio's paired percentile bootstrap interval at `level` over the validation seeds",
+    "target_grad_norm_sq": "squared gradient norm ||grad f||^2 (absolute)",
+    "target_loss_gap": "loss gap f(x) - f_ref (absolute, loss units)",
+    "L": "loss units per parameter unit squared (also L_am, L_qm, L_max, L_plus, L_pm, L_sample, L_workers: "
+         "Lipschitz constants of gradients; README, 'The constants')",
+    "delta0": "loss units: f(x0) - lower bound",
+    "grad_sq0": "squared gradient norm at x0",
+}
+
+
+def sig(value, digits: int = REPORTED_DIGITS):
+    """``value`` rounded to ``digits`` significant digits (lists and None pass through)."""
+    if isinstance(value, (list, tuple)):
+        return [sig(v, digits) for v in value]
+    if not isinstance(value, (float, np.floating)):
+        return value  # counts (int), flags, names and None stay as they are
+    value = float(value)
+    return float(f"{value:.{digits}g}") if math.isfinite(value) else value
 
 
 @dataclass(frozen=True)
@@ -114,7 +165,8 @@ def parse_config(mapping: Any, *, source: str) -> Config:
             continue
         if not isinstance(key, str):
             problems.append(unknown_key(key_text(key), key, _KNOWN))
-        elif key not in FREE_SECTIONS and difflib.get_close_matches(key, _KNOWN + list(FREE_SECTIONS)):
+        elif key not in FREE_SECTIONS and difflib.get_close_matches(key, _KNOWN + list(FREE_SECTIONS),
+                                                                    cutoff=TYPO_CUTOFF):
             problems.append(unknown_key(key, key, _KNOWN + list(FREE_SECTIONS)))
         else:
             extra[key] = deepcopy(value)

@@ -16,10 +16,43 @@ from .compressors import make_compressor
 from .config import Config, check_config_fits
 from .job import Job, data_digest
 from .simulate import Trajectory, simulate
-from .search import SYNCED
+from .search import SYNCED, stall_window
 from .workspace import Workspace
 
-__all__ = ["replay", "summarize", "stored_reference"]
+__all__ = ["replay", "summarize", "stored_reference", "config_seeds", "check_not_swapped"]
+
+
+def check_not_swapped(config_path, job_path) -> None:
+    """Exit 2 with a hint when CONFIG is a job file or JOB a config (given the other way round)."""
+    from ._yaml import load_yaml
+    from .errors import InputError
+
+    for path, want, other in ((config_path, "config", "job"), (job_path, "job", "config")):
+        try:
+            doc = load_yaml(path)
+        except InputError:
+            continue  # the loader itself reports it when the file is read for real, with its line
+        is_config = isinstance(doc, dict) and "bittune_config" in doc
+        is_job = isinstance(doc, dict) and "data" in doc and not is_config
+        if (want == "config" and is_job) or (want == "job" and is_config):
+            raise InputError(f"{path}: looks like a {other} file; did you swap the config and the job? "
+                             f"usage: bittune replay CONFIG --job JOB")
+
+
+def config_seeds(cfg: Config) -> list[int] | None:
+    """The validation seeds a tuned config was judged on (``expected.validation_seeds``), else None.
+
+    Replaying on them reproduces the config's ``expected`` figures: the same
+    trajectories, since a trajectory's random numbers depend on its seed only
+    (DEVELOPERS.md, Randomness), with the same stopping rules as the selection.
+    """
+    exp = cfg.extra.get("expected")
+    seeds = exp.get("validation_seeds") if isinstance(exp, dict) else None
+    if not isinstance(seeds, list) or not seeds:
+        return None
+    if not all(isinstance(s, int) and not isinstance(s, bool) and s >= 0 for s in seeds):
+        return None
+    return list(seeds)
 
 
 def replay(ws: Workspace, cfg: Config, *, seeds, source: str = "config") -> list[Trajectory]:
@@ -36,9 +69,12 @@ def replay(ws: Workspace, cfg: Config, *, seeds, source: str = "config") -> list
         params["minibatch"] = cfg.minibatch
     if cfg.method == "diana" and cfg.shift_rate is not None:
         params["shift_rate"] = cfg.shift_rate
+    # The selection's stopping rules (the stall window too), so replaying a config on its own
+    # validation seeds gives back its expected figures.
     return simulate(p, method=cfg.method, compressor=comp, step_size=cfg.step_size, seeds=seeds,
                     target=ws.target, max_rounds=ws.job.budget.max_rounds, x0=ws.x0, params=params,
-                    max_bits_per_worker=ws.job.budget.max_bits_per_worker, loss_ref=ws.loss_ref)
+                    max_bits_per_worker=ws.job.budget.max_bits_per_worker, loss_ref=ws.loss_ref,
+                    stall_window=stall_window(cfg.method, params.get("sync_probability")))
 
 
 def stored_reference(cfg: Config, job: Job) -> dict | None:

@@ -35,7 +35,8 @@ from ._yaml import atomic_write_text
 from .errors import InputError
 
 __all__ = ["write_report", "report_data", "curve_band", "search_history", "step_response",
-           "worker_smoothness", "best_per_method", "importance", "target_info", "GRID_POINTS", "CAUTION"]
+           "worker_smoothness", "best_per_method", "importance", "varying_params", "why", "why_sentence",
+           "target_info", "GRID_POINTS", "CAUTION"]
 
 #: Points of the common log-spaced bits grid of the convergence band.
 GRID_POINTS = 200
@@ -174,10 +175,28 @@ def best_per_method(study) -> dict:
             "none_completed": sorted(tried - set(best))}
 
 
+def varying_params(study) -> list[str]:
+    """Parameters that took more than one value over the completed trials (in first-seen order).
+
+    A parameter fixed by the job (one method, one compressor) carries no information about what
+    mattered, so the importance plot leaves it out."""
+    seen: dict[str, set] = {}
+    for t in _completed(study):
+        for k, v in t.params.items():
+            seen.setdefault(k, set()).add(v)
+    return [k for k, values in seen.items() if len(values) > 1]
+
+
 def importance(study) -> dict:
-    """Optuna's parameter importances (its default evaluator), or why there are none."""
+    """Optuna's parameter importances (its default evaluator) over the parameters that vary in the study,
+    or why there are none."""
     out = {"ok": False, "params": [], "importance": [], "trials": len(_completed(study)), "reason": None,
            "notes": []}
+    params = varying_params(study)
+    if not params:
+        out["reason"] = (f"not enough trials to compare: no parameter took more than one value in the "
+                         f"{out['trials']} completed trials")
+        return out
     try:
         # Optuna warns rather than raises on small or degenerate studies ("too small", "will be
         # equal", sparse regimes of a conditional parameter), and ``normalize`` is experimental.
@@ -187,7 +206,7 @@ def importance(study) -> dict:
         # evaluators (fANOVA, MDI) would only use params present in every completed trial.
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            raw = optuna.importance.get_param_importances(study, normalize=False)
+            raw = optuna.importance.get_param_importances(study, params=params, normalize=False)
     except Exception as exc:  # too few trials, a single-valued space, a missing optional package
         out["reason"] = f"not enough trials ({type(exc).__name__}: {exc})"
         return out
@@ -202,12 +221,74 @@ def importance(study) -> dict:
     return {**out, "ok": True, "params": list(raw), "importance": [float(v) / total for v in raw.values()]}
 
 
+def _cost_row(label: str, e: dict, seeds: str) -> dict:
+    bits, rounds = float(e["mean_bits_per_worker"]), float(e["mean_rounds"])
+    return {"label": label, "bits_per_round": bits / rounds if rounds else math.nan, "rounds": rounds,
+            "bits": bits, "seeds": seeds, "reached_all": e["reached"] == e["seeds"]}
+
+
+def why(summary: dict, study) -> dict:
+    """The winner beside the runner-up method and tuned GD: mean uplink bits per worker per round, rounds
+    and total (mean over seeds). The runner-up is the best finalist of another method on the fresh seeds,
+    else that method's best trial on the search seeds (``seeds`` says which), else None."""
+    sel = summary["selection"]
+    w = sel["winner"]
+    out = {"winner": _cost_row(f"{w['method']} + {w['compressor']}", w, "fresh"), "runner_up": None, "gd": None}
+    others = [e for e in sel["finalists"] if e["method"] != w["method"] and e["reached"] == e["seeds"]]
+    if others:
+        e = min(others, key=lambda e: e["mean_bits_per_worker"])
+        out["runner_up"] = _cost_row(f"{e['method']} + {e['compressor']}", e, "fresh")
+    else:
+        best: dict = {}
+        for t in _completed(study):
+            m = t.params["method"]
+            if m != w["method"] and _reached_all(t) and (m not in best or t.value < best[m].value):
+                best[m] = t
+        if best:
+            t = min(best.values(), key=lambda t: t.value)
+            row = {"mean_bits_per_worker": float(np.mean(t.user_attrs["bits"])),
+                   "mean_rounds": float(np.mean(t.user_attrs["rounds"])), "reached": 1, "seeds": 1}
+            out["runner_up"] = _cost_row(f"{t.params['method']} + {_compressor(t.params)}", row, "search")
+    if sel.get("gd"):
+        out["gd"] = _cost_row("uncompressed GD with a tuned step", sel["gd"], "fresh")
+    gain = (sel.get("gains") or {}).get("over_tuned_gd")
+    out["gain_over_tuned_gd"] = gain
+    return out
+
+
+def why_sentence(d: dict) -> str:
+    """One sentence: why this config, in bits per round x rounds = total (rounded as the config's figures)."""
+    from .config import sig
+
+    d = {k: ({**v, "bits": sig(v["bits"]), "rounds": sig(v["rounds"])} if isinstance(v, dict) and "bits" in v
+             else v) for k, v in d.items()}
+
+    def part(r: dict) -> str:
+        seeds = "" if r["seeds"] == "fresh" else " on the search seeds"
+        return (f"{r['label']} ({_bits(r['bits_per_round'])} bits per round × {_fmt(r['rounds'], '.4g')} rounds = "
+                f"{_bits(r['bits'])}{seeds})")
+    w = d["winner"]
+    text = (f"Why this config: {w['label']} needs {_bits(w['bits_per_round'])} uplink bits per worker per round × "
+            f"{_fmt(w['rounds'], '.4g')} rounds = {_bits(w['bits'])} bits per worker")
+    rivals = [part(r) for r in (d["runner_up"], d["gd"]) if r is not None]
+    if d["runner_up"] is not None:
+        rivals[0] = "the runner-up method, " + rivals[0] + ","
+    if rivals:
+        text += ", against " + " and ".join(rivals)
+    g = d.get("gain_over_tuned_gd")
+    if g:
+        ci = g.get("interval")
+        text += (f": {'at least ' if g['lower_bound'] else ''}{g['ratio']:.3g}× fewer bits than tuned GD"
+                 + (f" ({g['level']:.0%} paired bootstrap interval {ci[0]:.3g}–{ci[1]:.3g})" if ci else ""))
+    return text + " (means over the fresh seeds unless marked)."
+
+
 def report_data(summary: dict, study) -> dict:
     """Every number the figures show (what ``report_data.json`` holds)."""
     return {"convergence": {w: curve_band(summary, w) for w in ("winner", "baseline")},
             "history": search_history(study), "step": step_response(study),
             "smoothness": worker_smoothness(summary), "methods": best_per_method(study),
-            "importance": importance(study)}
+            "importance": importance(study), "why": why(summary, study)}
 
 
 # -------------------------------------------------------------------- drawing
@@ -368,7 +449,8 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
     sizes, t = prob["worker_sizes"], target_info(s)
     goal = f"{t['label']} ≤ {t['threshold']:.3g}" + (f" with f_ref = {t['f_ref']:.6g} ({t['note']})"
                                                      if t["kind"] == "loss_gap" else "")
-    doc: list = [("p", f"Job {s['job']}; config {s['config']}; study {s['study']} in {s['storage']}."),
+    doc: list = [("p", why_sentence(data["why"])),
+                 ("p", f"Job {s['job']}; config {s['config']}; study {s['study']} in {s['storage']}."),
                  ("p", f"Model {prob['model']}, {prob['samples']:,} samples, d = {prob['dimension']}, "
                        f"{prob['workers']} workers (sizes {min(sizes):,}–{max(sizes):,}); "
                        f"target {goal}.")]
@@ -389,7 +471,8 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
                   f"than the theory setting {b['method']} + {b['compressor']} (step {_fmt(b['step_size'])}: "
                   f"{_bits(b['mean_bits_per_worker'])} bits per worker, reached on {b['reached']} of {b['seeds']} seeds"
                   + ("; it stopped short of the target on some seeds, so its bits are a lower bound)." if missed
-                     else ").")),
+                     else ").") + _interval_text((sel.get("gains") or {}).get("over_theory"))),
+            *([("p", _gd_text(sel))] if sel.get("gd") else []),
             ("note", CAUTION),
             ("img", "convergence", f"{t['label']} against uplink bits per worker, chosen config and theory "
                                    "baseline: line = geometric mean over the fresh seeds, band = min–max, "
@@ -459,6 +542,24 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
         doc += [("h", sec["title"])] + ([("p", sec["text"])] if sec.get("text") else [])
         doc += [_rows_table(sec["rows"])] if sec.get("rows") else []
     return f"bittune report: {Path(s['job']).name}", doc
+
+
+def _interval_text(gain: dict | None) -> str:
+    ci = (gain or {}).get("interval")
+    return f" Paired bootstrap interval ({gain['level']:.0%}, fresh seeds): {ci[0]:.3g}–{ci[1]:.3g}." if ci else ""
+
+
+def _gd_text(sel: dict) -> str:
+    from .config import sig
+
+    g, gain = sel["gd"], sel["gains"]["over_tuned_gd"]
+    ci = gain.get("interval")
+    return (f"Gain over tuned GD: {'at least ' if gain['lower_bound'] else ''}{gain['ratio']:.3g}× fewer uplink bits "
+            + (f"({gain['level']:.0%} paired percentile bootstrap interval over the fresh seeds "
+               f"{ci[0]:.3g}–{ci[1]:.3g}; Efron & Tibshirani 1993) " if ci else "")
+            + f"than uncompressed GD with its step tuned over the search's step ladder (step {_fmt(g['step_size'])}: "
+            f"{_bits(sig(g['mean_bits_per_worker']))} bits per worker in {_fmt(g['mean_rounds'], '.4g')} rounds, "
+            f"reached on {g['reached']} of {g['seeds']} seeds).")
 
 
 def _markdown(title: str, doc: list, files: dict) -> str:

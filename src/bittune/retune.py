@@ -30,7 +30,8 @@ from .report import write_report
 from .errors import EXIT, InputError
 from .search import SYNCED, Candidate, open_storage
 from .select import Evaluation, evaluate, select
-from .tune import _config_doc, _plain, _Progress, prepare, respace, run_search, trial_counts, write_summary
+from .progress import Progress
+from .tune import _config_doc, _plain, objective_unit, prepare, respace, run_search, trial_counts, write_summary
 
 __all__ = ["RetuneResult", "retune", "drift_table", "decide", "HISTORY_FIELDS", "history_rows"]
 
@@ -92,9 +93,12 @@ def decide(new: Evaluation, old: Evaluation, *, margin: float = MARGIN, level: f
     else:
         p = float(stats.ttest_rel(new.costs, old.costs, alternative="less").pvalue)
     gain = 1.0 - new.mean_cost / old.mean_cost
+    # The same quantity the selection reports: mean cost on the fresh (validation) seeds, not the
+    # search seeds the progress lines show while trials run.
+    seeds = f"on the {len(new.runs)} fresh seeds"
     if gain > margin and p < level:
-        return "replaced", f"{gain:.1%} fewer {unit} (paired t-test p = {p:.3g} < {level})", p
-    return "kept", (f"{gain:.1%} fewer {unit} is not enough (needs > {margin:.0%} and p < {level}; "
+        return "replaced", f"{gain:.1%} fewer {unit} {seeds} (paired t-test p = {p:.3g} < {level})", p
+    return "kept", (f"{gain:.1%} fewer {unit} {seeds} is not enough (needs > {margin:.0%} and p < {level}; "
                     f"p = {p:.3g})"), p
 
 
@@ -144,10 +148,14 @@ def _clip(v: float, bounds) -> float:
     return float(min(max(v, bounds[0]), bounds[1]))
 
 
-def _previous_best(cfg: Config, count: int = 3) -> list[Candidate]:
-    """The previous study's best few candidates, when its storage can be read (else none)."""
+def _previous_best(cfg: Config, path: Path, count: int = 3) -> list[Candidate]:
+    """The previous study's best few candidates, when its storage can be read (else none).
+
+    A storage file path in ``provenance`` is relative to the config's folder (older configs: absolute)."""
     prov = cfg.extra.get("provenance") or {}
     url, name = prov.get("storage"), prov.get("study")
+    if isinstance(url, str) and "://" not in url:
+        url = str(Path(path).parent / url)  # an absolute path stays as it is
     if not url or not name or ("://" not in url and not Path(url).exists()):
         return []
     try:
@@ -194,7 +202,7 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
         raise InputError("--previous: the config has no constants section (write it with bittune tune)")
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
     storage_url = storage or str(run_dir / "study.journal")
-    log = progress or _Progress(total=trials or 0)
+    log = progress or Progress(total=trials or 0)
     first = prepare(job_path, {"jobs": jobs, "seed": seed}, log, allow_code=allow_code)
     ws, spec = first.ws, first.job.search
     dims = (prev.dimension or -1, ws.problem.dim)
@@ -215,13 +223,13 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
         overrides = {"trials": trials or max(10, spec.trials // 3)}
         if small and prev_cand.method in first.space.methods:
             overrides.update(_narrowed(spec, prev_cand, first.space))
-        warm_cands = [prev_cand] + _previous_best(prev)
+        warm_cands = [prev_cand] + _previous_best(prev, previous)
     prep = respace(first, overrides)
-    log.total = prep.job.search.trials
+    log.total, log.unit = prep.job.search.trials, objective_unit(prep.job)
     warm = _warm_params(prep.space, warm_cands)
     study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, warm=warm)
     log.note("select: validating tonight's best and the previous config on the same fresh seeds")
-    selection = select(ws, prep.space, study, prep.network)
+    selection = select(ws, prep.space, study, prep.network, log=log)
     if new_problem:
         decision, reason, p = ("replaced", "new problem (dimension or worker count changed)", math.nan)
         old_eval = None
@@ -230,6 +238,9 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
     else:
         old_eval = evaluate(ws, [prev_cand], selection.seeds, prep.network)[0]
         decision, reason, p = decide(selection.winner, old_eval, margin=margin, level=level)
+        log.note(f"select: on the {len(selection.seeds)} fresh seeds tonight's best needs "
+                 f"{selection.winner.mean_cost:,.4g} {objective_unit(prep.job)} (the search's best above is on "
+                 f"the search seeds), the previous config {old_eval.mean_cost:,.4g}")
     section = {
         "decision": decision, "reason": reason, "p_value": None if math.isnan(p) else p,
         "margin": margin, "level": level, "drift_size": size, "new_problem": new_problem,
@@ -242,7 +253,7 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
         section["f_ref"] = {"previous": old.get("value") if isinstance(old, dict) else None,
                             "current": ws.loss_ref, "note": ws.reference["note"]}
     if decision == "replaced":
-        doc = _config_doc(prep, selection, study.study_name, storage_url)
+        doc = _config_doc(prep, selection, study.study_name, storage_url, output)
     else:
         doc = config_to_dict(prev)
         doc.pop("retune", None)

@@ -8,7 +8,16 @@ the target on every fresh seed.
 Its step is then halved (by ``backoff_factor``, at most ``backoff_steps``
 times) while the mean bits grow by less than ``backoff_tolerance``, so the
 chosen point sits away from the divergence edge. The theory setting of the
-winning method runs on the same seeds as the baseline.
+winning method runs on the same seeds as the theory baseline.
+
+A gain over a timid theory step says little on its own, so the selection also
+tunes the plain uncompressed method: GD with its step searched over the search's
+seed ladder (``search.SEED_LADDER`` x the theory step, clipped to
+``search.step_range``) on the search seeds, in one engine batch of all steps x
+seeds; the best step then runs on the fresh seeds like the winner. Both gains
+(over tuned GD and over theory) come with a paired percentile bootstrap
+interval over the fresh seeds (Efron & Tibshirani 1993, ch. 13; computed by
+``scipy.stats.bootstrap`` with a seeded ``numpy.random.Generator``).
 """
 
 from __future__ import annotations
@@ -20,11 +29,16 @@ import numpy as np
 from optuna.trial import TrialState
 
 from .compressors import make_compressor
-from .search import Candidate, Space, stall_window
+from .search import SEED_LADDER, Candidate, Space, score, search_seeds, stall_window
 from .parallel import start_batch
 from .simulate import Trajectory
 
-__all__ = ["Evaluation", "Selection", "validation_seeds", "evaluate", "select"]
+__all__ = ["Evaluation", "Selection", "Gain", "validation_seeds", "evaluate", "select", "gd_ladder",
+           "paired_gain", "GAIN_LEVEL", "GAIN_RESAMPLES"]
+
+#: Confidence level and resamples of the paired bootstrap intervals of the gains (common practice, no source:
+#: 95%, and enough resamples that the percentile ends move by well under 1% between generator seeds).
+GAIN_LEVEL, GAIN_RESAMPLES = 0.95, 9999
 
 
 @dataclass
@@ -88,13 +102,50 @@ class Evaluation:
         }
 
 
+@dataclass(frozen=True)
+class Gain:
+    """Baseline mean cost over the winner's, with a paired bootstrap interval over the seeds."""
+
+    ratio: float
+    low: float | None  # None: fewer than two seeds, no interval
+    high: float | None
+    lower_bound: bool  # the baseline missed the target on some seed: its cost (so the gain) is understated
+
+    def to_dict(self) -> dict:
+        return {"ratio": self.ratio, "interval": None if self.low is None else [self.low, self.high],
+                "level": GAIN_LEVEL, "lower_bound": self.lower_bound}
+
+
+def paired_gain(baseline: np.ndarray, winner: np.ndarray, *, seed: int = 0, lower_bound: bool = False) -> Gain:
+    """mean(baseline) / mean(winner) and its paired percentile bootstrap interval.
+
+    Seeds are resampled in pairs (the two configs ran on the same seeds, so the
+    pairing removes the seed-to-seed spread they share); the interval holds the
+    (1 - level)/2 and (1 + level)/2 percentiles of the resampled ratios
+    (Efron & Tibshirani 1993, ch. 13, the percentile interval).
+    """
+    from scipy import stats
+
+    baseline, winner = np.asarray(baseline, float), np.asarray(winner, float)
+    ratio = float(baseline.mean() / winner.mean())
+    if len(baseline) < 2:
+        return Gain(ratio, None, None, lower_bound)
+    res = stats.bootstrap((baseline, winner), lambda b, w, axis: b.mean(axis) / w.mean(axis), paired=True,
+                          vectorized=True, method="percentile", confidence_level=GAIN_LEVEL,
+                          n_resamples=GAIN_RESAMPLES, random_state=np.random.default_rng(seed))
+    ci = res.confidence_interval
+    return Gain(ratio, float(ci.low), float(ci.high), lower_bound)
+
+
 @dataclass
 class Selection:
     winner: Evaluation
-    baseline: Evaluation
+    baseline: Evaluation  # the theory setting of the winning method
     finalists: list[Evaluation]
     backoff: list[Evaluation]
     seeds: list[int]
+    gd: Evaluation | None = None  # tuned uncompressed GD on the fresh seeds
+    gd_ladder: list[Evaluation] = field(default_factory=list)  # GD's step ladder on the search seeds
 
     @property
     def all_reached(self) -> bool:
@@ -103,6 +154,15 @@ class Selection:
     def gain(self) -> float:
         """Baseline mean cost over winner mean cost (a lower bound if the baseline missed)."""
         return self.baseline.mean_cost / self.winner.mean_cost
+
+    def gains(self, seed: int = 0) -> dict[str, Gain]:
+        """``over_theory`` and (when GD ran) ``over_tuned_gd``, each with its paired interval."""
+        out = {"over_theory": paired_gain(self.baseline.costs, self.winner.costs, seed=seed,
+                                          lower_bound=not self.baseline.all_reached)}
+        if self.gd is not None:
+            out["over_tuned_gd"] = paired_gain(self.gd.costs, self.winner.costs, seed=seed,
+                                               lower_bound=not self.gd.all_reached)
+        return out
 
 
 def validation_seeds(spec) -> list[int]:
@@ -131,21 +191,41 @@ def _batches(ws, candidates: list[Candidate], seeds: list[int]) -> list[tuple[li
     return out
 
 
-def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None) -> list[Evaluation]:
-    """Run each candidate on ``seeds``; candidates of one method and compressor share a batch."""
-    return start_evaluate(ws, candidates, seeds, network, jobs=1)()
+class _Ticker:
+    """A simulate() monitor that reports finished trajectories of one batch to a progress task."""
+
+    def __init__(self, task, offset: int, size: int):
+        self.task, self.offset, self.size = task, offset, size
+
+    def __call__(self, k, index, bits, metric) -> bool:
+        self.task.update(self.offset + self.size - len(index), extra=f"round {k}")
+        return False  # never stops the batch
 
 
-def start_evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, *, jobs: int):
+def evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, task=None) -> list[Evaluation]:
+    """Run each candidate on ``seeds``; candidates of one method and compressor share a batch.
+    ``task`` (a :class:`bittune.progress.Task`) hears of every finished trajectory."""
+    return start_evaluate(ws, candidates, seeds, network, jobs=1, task=task)()
+
+
+def start_evaluate(ws, candidates: list[Candidate], seeds: list[int], network=None, *, jobs: int, task=None):
     """:func:`evaluate` started in another process when ``jobs`` > 1 (:func:`bittune.parallel.start_batch`);
-    returns a function that waits for the evaluations and returns them."""
-    pending = [(idx, start_batch(ws.problem, kwargs, jobs=jobs)) for idx, kwargs in _batches(ws, candidates, seeds)]
-    S = len(seeds)
+    returns a function that waits for the evaluations and returns them. ``task`` is told of finished
+    trajectories round by round in this process, and of a whole batch when it comes back from another."""
+    S, pending, offset = len(seeds), [], 0
+    for idx, kwargs in _batches(ws, candidates, seeds):
+        size = len(idx) * S
+        if task is not None and jobs == 1:
+            kwargs = dict(kwargs, monitor=_Ticker(task, offset, size))
+        pending.append((idx, offset + size, start_batch(ws.problem, kwargs, jobs=jobs)))
+        offset += size
 
     def result() -> list[Evaluation]:
         out: list[Evaluation | None] = [None] * len(candidates)
-        for idx, wait in pending:
+        for idx, end, wait in pending:
             runs = wait()
+            if task is not None:
+                task.update(end)
             for j, i in enumerate(idx):
                 out[i] = Evaluation(candidates[i], runs[j * S:(j + 1) * S], network)
         return out
@@ -153,10 +233,29 @@ def start_evaluate(ws, candidates: list[Candidate], seeds: list[int], network=No
     return result
 
 
-def _start_baseline(ws, space: Space, method: str, seeds: list[int], network):
+def _start_baseline(ws, space: Space, method: str, seeds: list[int], network, task=None):
     """The theory setting of ``method`` at its cheapest predicted density, started (see start_evaluate)."""
     cand = space.candidate(method, space.theory_density(method))
-    return start_evaluate(ws, [cand], seeds, network, jobs=ws.job.search.jobs)
+    return start_evaluate(ws, [cand], seeds, network, jobs=ws.job.search.jobs, task=task)
+
+
+def gd_ladder(space: Space, step_range=None) -> list[Candidate]:
+    """Uncompressed GD at the search's seed ladder of steps over its theory step, clipped to ``step_range``
+    (default the space's; a retune passes the job's own, since its narrowed range belongs to another method)."""
+    lo, hi = step_range or space.spec.step_range
+    mults = sorted({min(max(m, lo), hi) for m in SEED_LADDER})
+    return [space.candidate("gd", {"name": "identity"}, step_mult=m) for m in mults]
+
+
+def _best_rung(ws, ladder: list[Evaluation], network) -> Candidate:
+    """The ladder's best step on the search seeds: reached on every seed at the least cost, else the best score."""
+    from .cost import cost_function
+
+    def key(e: Evaluation):
+        value, _ = score(e.runs, target=ws.target, cap=None, cost=cost_function(network))
+        return (not e.all_reached, value)
+
+    return min(ladder, key=key).candidate
 
 
 def finalists(study, space: Space, *, count: int) -> list[Candidate]:
@@ -174,8 +273,12 @@ def finalists(study, space: Space, *, count: int) -> list[Candidate]:
     return out
 
 
-def select(ws, space: Space, study, network=None) -> Selection:
-    """Validate the finalists, back the winner's step off, run the theory baseline."""
+def select(ws, space: Space, study, network=None, log=None) -> Selection:
+    """Validate the finalists, back the winner's step off, run the theory and tuned-GD baselines.
+
+    ``log`` (a :class:`bittune.progress.Progress`) shows each phase's finished trajectories."""
+    from .progress import task as start_task
+
     spec = ws.job.search
     seeds = validation_seeds(spec)
     cands = finalists(study, space, count=spec.finalists)
@@ -186,19 +289,31 @@ def select(ws, space: Space, study, network=None) -> Selection:
     # The theory baseline needs only the method: with --jobs > 1 it runs in another process
     # beside the finalists (one method among them) or beside the back-off steps.
     methods = {c.method for c in cands}
+    S, ladder_cands = len(seeds), gd_ladder(space, ws.job.search.step_range)  # the job's range, not a retune's
+    # Baselines: the theory setting (S), GD's ladder on the search seeds, tuned GD on the fresh seeds (S).
+    # Their trajectories are counted apart: the first two may finish in another process.
+    base_task = start_task(log, "baselines", 2 * S + len(ladder_cands) * spec.seeds, "trajectories")
     pending_baseline = None
     if len(methods) == 1:
-        pending_baseline = _start_baseline(ws, space, next(iter(methods)), seeds, network)
-    evals = evaluate(ws, cands, seeds, network)
+        pending_baseline = _start_baseline(ws, space, next(iter(methods)), seeds, network, task=base_task.part())
+    # Tuned GD: all ladder steps x search seeds in one batch, beside the finalists when --jobs > 1.
+    pending_ladder = start_evaluate(ws, ladder_cands, search_seeds(spec), network, jobs=spec.jobs,
+                                    task=base_task.part())
+    val_task = start_task(log, "validation", len(cands) * S, "trajectories")
+    evals = evaluate(ws, cands, seeds, network, task=val_task)
+    val_task.finish()
     ok = [e for e in evals if e.all_reached]
     winner = min(ok, key=lambda e: e.mean_cost) if ok else min(
         evals, key=lambda e: (-sum(r.reached for r in e.runs), e.mean_cost))
     if pending_baseline is None:
-        pending_baseline = _start_baseline(ws, space, winner.candidate.method, seeds, network)
+        pending_baseline = _start_baseline(ws, space, winner.candidate.method, seeds, network,
+                                           task=base_task.part())
     backoff: list[Evaluation] = []
     if winner.all_reached and spec.backoff_steps > 0:
         steps = [winner.candidate.step_size / spec.backoff_factor ** j for j in range(1, spec.backoff_steps + 1)]
-        backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds, network)
+        back_task = start_task(log, "back-off", len(steps) * S, "trajectories")
+        backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds, network, task=back_task)
+        back_task.finish()
         limit = winner.mean_cost * (1.0 + spec.backoff_tolerance)
         chosen = winner
         for e in backoff:
@@ -206,5 +321,9 @@ def select(ws, space: Space, study, network=None) -> Selection:
                 break
             chosen = e
         winner = chosen
+    ladder = pending_ladder()
+    gd = evaluate(ws, [_best_rung(ws, ladder, network)], seeds, network, task=base_task.part())[0]
     baseline = pending_baseline()[0]
-    return Selection(winner=winner, baseline=baseline, finalists=evals, backoff=backoff, seeds=seeds)
+    base_task.finish()
+    return Selection(winner=winner, baseline=baseline, finalists=evals, backoff=backoff, seeds=seeds, gd=gd,
+                     gd_ladder=ladder)

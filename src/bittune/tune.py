@@ -10,8 +10,6 @@ restarted with the same run directory resumes from that storage.
 from __future__ import annotations
 
 import datetime as _dt
-import math
-import sys
 import threading
 import time
 from dataclasses import dataclass
@@ -22,14 +20,15 @@ import optuna
 from optuna.trial import TrialState
 
 from . import __version__
-from .config import write_config
+from .config import SEED_DIGITS, UNITS, sig, write_config
 from .errors import EXIT, InputError
 from .job import Job, data_digest, load_job
 from .probe import probe_workspace
+from .progress import Progress
 from .report import write_report
 from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials, mask_url, open_storage,
                      open_study, run_trials, search_seeds)
-from .select import Selection, select
+from .select import GAIN_RESAMPLES, Selection, select
 from .workspace import open_job
 
 __all__ = ["TuneResult", "tune", "study_name", "worker_main"]
@@ -44,6 +43,11 @@ class TuneResult:
     storage: str
     trials: dict
     report: dict | None = None  # paths written by the report
+
+
+def objective_unit(job: Job) -> str:
+    """How a trial's value reads in progress lines."""
+    return "s simulated" if job.objective == "seconds" else "bits/worker"
 
 
 def study_name(job: Job) -> str:
@@ -208,12 +212,12 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
     storage_url = storage or str(run_dir / "study.journal")
     job0 = load_job(job_path)
-    log = progress or _Progress(total=trials or job0.search.trials)
+    log = progress or Progress(total=trials or job0.search.trials, unit=objective_unit(job0))
     prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log, allow_code=allow_code)
     study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only)
     log.note("select: validating the best candidates on fresh seeds")
-    selection = select(prep.ws, prep.space, study, prep.network)
-    config = _config_doc(prep, selection, study.study_name, storage_url)
+    selection = select(prep.ws, prep.space, study, prep.network, log=log)
+    config = _config_doc(prep, selection, study.study_name, storage_url, output)
     write_config(output, config)
     write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
                   storage=storage_url)
@@ -331,8 +335,12 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
             "finalists": [e.summary() for e in selection.finalists],
             "backoff": [e.summary() for e in selection.backoff],
             "gain_over_theory": selection.gain(), "all_reached": selection.all_reached,
+            "gd": None if selection.gd is None else selection.gd.summary(),
+            "gd_ladder": [e.summary() for e in selection.gd_ladder],
+            "gains": {k: g.to_dict() for k, g in selection.gains(job.search.seed).items()},
         },
-        "curves": {"winner": curves(selection.winner), "baseline": curves(selection.baseline)},
+        "curves": {"winner": curves(selection.winner), "baseline": curves(selection.baseline),
+                   **({} if selection.gd is None else {"gd": curves(selection.gd)})},
         **(extra or {}),
     }
     path = Path(run_dir) / SUMMARY
@@ -351,7 +359,14 @@ def _check_study(study: optuna.Study, job: Job) -> None:
                          f"(digest {digest[:12]}, this job {job.digest[:12]})")
 
 
-def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str) -> dict:
+def _relative(path, base: Path) -> str:
+    """``path`` relative to the folder ``base`` (a config's folder), as a POSIX-style string."""
+    import os
+
+    return Path(os.path.relpath(Path(path).absolute(), Path(base).absolute())).as_posix()
+
+
+def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str, output: Path | None = None) -> dict:
     ws, job, constants, spec = prep.ws, prep.job, prep.constants, prep.job.search
     w, b = sel.winner.summary(), sel.baseline.summary()
     doc = {"bittune_config": 1, **sel.winner.candidate.to_config(),
@@ -360,23 +375,31 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str) -> dict
     doc["expected"] = {
         "validation_seeds": sel.seeds,
         "reached_all": bool(sel.all_reached),
-        "mean_bits_per_worker": w["mean_bits_per_worker"], "std_bits_per_worker": w["std_bits_per_worker"],
-        "mean_rounds": w["mean_rounds"], "std_rounds": w["std_rounds"],
-        "bits_per_worker": w["bits_per_worker"], "rounds": w["rounds"],
-        "mean_gradient_evals_per_worker": w["mean_gradient_evals_per_worker"],
-        "theory_baseline": {k: b[k] for k in ("method", "compressor", "step_size", "sync_probability",
-                                               "shift_rate", "reached", "mean_bits_per_worker",
-                                               "std_bits_per_worker", "mean_rounds")},
+        # Figures rounded for reading. Per-seed bits keep SEED_DIGITS digits (they are fractions only
+        # because they are means over the workers); rounds are counts and stay exact.
+        "mean_bits_per_worker": sig(w["mean_bits_per_worker"]), "std_bits_per_worker": sig(w["std_bits_per_worker"]),
+        "mean_rounds": sig(w["mean_rounds"]), "std_rounds": sig(w["std_rounds"]),
+        "bits_per_worker": sig(w["bits_per_worker"], SEED_DIGITS), "rounds": w["rounds"],
+        "mean_gradient_evals_per_worker": sig(w["mean_gradient_evals_per_worker"]),
+        "theory_baseline": {k: (b[k] if k in ("step_size", "sync_probability", "shift_rate") else sig(b[k]))
+                            for k in ("method", "compressor", "step_size", "sync_probability", "shift_rate",
+                                      "reached", "mean_bits_per_worker", "std_bits_per_worker", "mean_rounds")},
         "objective": job.objective,
-        "gain_over_theory": float(sel.gain()),
+        "gain_over_theory": sig(sel.gain()),
         "gain_is_lower_bound": not sel.baseline.all_reached,
         **({"target_grad_norm_sq": float(ws.target)} if ws.reference is None
            else {"target_loss_gap": float(ws.target), "f_ref": ws.loss_ref}),
     }
     if prep.network is not None:
-        doc["expected"].update(mean_seconds=w["mean_seconds"], std_seconds=w["std_seconds"],
+        doc["expected"].update(mean_seconds=sig(w["mean_seconds"]), std_seconds=sig(w["std_seconds"]),
                                seconds=w["seconds"], network=prep.network.to_dict())
-        doc["expected"]["theory_baseline"]["mean_seconds"] = b["mean_seconds"]
+        doc["expected"]["theory_baseline"]["mean_seconds"] = sig(b["mean_seconds"])
+    if sel.gd is not None:
+        doc["baseline"] = _gd_section(sel, prep)
+    doc["gains"] = {"objective": job.objective, "validation_seeds": len(sel.seeds),
+                    **{k: {kk: sig(vv) for kk, vv in g.to_dict().items()} for k, g in sel.gains(spec.seed).items()},
+                    "interval_method": f"paired percentile bootstrap over the validation seeds, {GAIN_RESAMPLES} "
+                                       f"resamples (Efron & Tibshirani 1993, ch. 13)"}
     if not sel.all_reached:
         doc["best_effort"] = True
     c = constants.to_dict()
@@ -391,15 +414,40 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str) -> dict
     doc["constants"]["samples"] = int(ws.problem.worker_sizes.sum())
     doc["constants"]["worker_samples"] = [int(v) for v in ws.problem.worker_sizes]
     data_path = job.data.path
+    # Paths relative to the config's folder (the config can move together with its job and data).
+    here = Path(output).parent if output is not None else Path.cwd()
+    store = mask_url(storage) if "://" in storage else _relative(storage, here)
     doc["provenance"] = {
         "bittune": __version__, "optuna": optuna.__version__,
         "time_utc": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
-        "job": str(job.path), "job_sha256": job.digest,
-        "data": str(data_path), "data_sha256": data_digest(job),
-        "study": name, "storage": mask_url(storage), "seed": int(spec.seed), "trials": int(spec.trials),
+        "paths_relative_to": "the config file's folder",
+        "job": _relative(job.path, here), "job_sha256": job.digest,
+        "data": _relative(data_path, here), "data_sha256": data_digest(job),
+        "study": name, "storage": store, "seed": int(spec.seed), "trials": int(spec.trials),
         "search_seeds": search_seeds(spec),
     }
+    doc["units"] = {k: v for k, v in UNITS.items()
+                    if k not in ("mean_seconds", "std_seconds", "seconds") or prep.network is not None}
     return _plain(doc)
+
+
+def _gd_section(sel: Selection, prep: Prepared) -> dict:
+    """The tuned uncompressed baseline: its ladder on the search seeds, its best step on the fresh seeds."""
+    g = sel.gd.summary()
+    out = {"note": "uncompressed GD, its step tuned over the search's step ladder on the search seeds, then run "
+                   "on expected.validation_seeds",
+           "method": "gd", "compressor": g["compressor"], "step_size": g["step_size"],
+           "step_mult": sig(sel.gd.candidate.step_mult), "reached": g["reached"],
+           "mean_bits_per_worker": sig(g["mean_bits_per_worker"]), "std_bits_per_worker": sig(g["std_bits_per_worker"]),
+           "mean_rounds": sig(g["mean_rounds"]), "bits_per_worker": sig(g["bits_per_worker"], SEED_DIGITS),
+           "rounds": g["rounds"]}
+    if prep.network is not None:
+        out["mean_seconds"] = sig(g["mean_seconds"])
+    out["ladder"] = [{"step_mult": sig(e.candidate.step_mult), "step_size": float(e.candidate.step_size),
+                      "reached": int(sum(r.reached for r in e.runs)), "seeds": len(e.runs),
+                      "mean_bits_per_worker": sig(e.mean_bits)} for e in sel.gd_ladder]
+    out["ladder_seeds"] = "search seeds (provenance.search_seeds)"
+    return out
 
 
 def _plain(doc):
@@ -410,38 +458,6 @@ def _plain(doc):
     if isinstance(doc, (np.floating, np.integer, np.bool_)):
         return doc.item()
     return doc
-
-
-class _Progress:
-    """Progress on stderr: one rewritten line on a terminal, plain lines otherwise."""
-
-    def __init__(self, total: int, stream=None):
-        self.total = total
-        self.stream = stream or sys.stderr
-        self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
-        self.start = time.monotonic()
-        self._last_line = 0.0
-        self._open = False
-
-    def note(self, text: str) -> None:
-        if self._open:
-            self.stream.write("\n")
-            self._open = False
-        self.stream.write(f"[bittune] {text}\n")
-        self.stream.flush()
-
-    def trials(self, done: int, best: float | None, pruned: int, failed: int) -> None:
-        elapsed = time.monotonic() - self.start
-        best_txt = f"{best:,.0f} bits/worker" if best is not None and math.isfinite(best) else "none yet"
-        line = (f"[bittune] trials {done}/{self.total} (pruned {pruned}, failed {failed}), "
-                f"best {best_txt}, {elapsed:.0f} s")
-        if self.tty:
-            self.stream.write("\r" + line + " " * 8)
-            self._open = True
-        elif time.monotonic() - self._last_line >= 10.0 or done >= self.total:
-            self.stream.write(line + "\n")
-            self._last_line = time.monotonic()
-        self.stream.flush()
 
 
 class _Watcher(threading.Thread):
