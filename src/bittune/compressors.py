@@ -36,7 +36,7 @@ from bittune.errors import InputError
 
 __all__ = [
     "Compressor", "Identity", "RandK", "TopK", "Dither", "Natural", "NaturalDither", "PermK",
-    "COMPRESSORS", "parse_spec", "make_compressor",
+    "COMPRESSORS", "parse_spec", "make_compressor", "PerTrajectory",
 ]
 
 _FLOAT_BITS = 32  # one float32 value
@@ -374,6 +374,59 @@ class PermK(Compressor):
 
     def __repr__(self) -> str:
         return f"{type(self).__name__}({self.label()!r}, dim={self.dim}, n_workers={self.n_workers})"
+
+
+class PerTrajectory:
+    """One compressor per trajectory of a batch: several settings of one compressor class
+    (Rand-K at different K, dithering at different levels, ...) inside one engine batch.
+
+    ``parts`` are the distinct compressors and ``assign[b]`` the part trajectory b uses.
+    :meth:`compress` hands each part the rows that use it (a loop over the distinct
+    settings, never over workers or trajectories), so every trajectory gets exactly
+    the values and bits it gets when its compressor runs alone. ``omega``, ``alpha``
+    and ``density`` are (B,) arrays over the trajectories still in the batch;
+    :meth:`keep` drops finished ones, as the methods' state does.
+    """
+
+    def __init__(self, parts, assign) -> None:
+        parts = list(parts)
+        kinds = {(type(c), c.unbiased, c.correlated) for c in parts}
+        if not parts or len(kinds) != 1:
+            raise ValueError(f"PerTrajectory needs compressors of one class, got {[c.label() for c in parts]}")
+        self.parts = parts
+        self.assign = np.asarray(assign, dtype=np.int64).copy()
+        if self.assign.ndim != 1 or self.assign.min() < 0 or self.assign.max() >= len(parts):
+            raise ValueError(f"assign must index the {len(parts)} parts, got {assign!r}")
+        first = parts[0]
+        self.name, self.dim = first.name, first.dim
+        self.unbiased, self.correlated = first.unbiased, first.correlated
+
+    def _per_row(self, attr: str) -> np.ndarray:
+        return np.array([getattr(c, attr) for c in self.parts], dtype=np.float64)[self.assign]
+
+    omega = property(lambda self: self._per_row("omega"))
+    alpha = property(lambda self: self._per_row("alpha"))
+    density = property(lambda self: self._per_row("density"))
+
+    def keep(self, index: np.ndarray) -> None:
+        """Keep rows ``index`` of the batch (the engine drops finished trajectories)."""
+        self.assign = self.assign[index]
+
+    def compress(self, v: np.ndarray, keys: np.ndarray, round_: int) -> tuple[np.ndarray, np.ndarray]:
+        if v.shape[0] != self.assign.shape[0]:
+            raise ValueError(f"PerTrajectory: a block of {v.shape[0]} trajectories, {self.assign.shape[0]} assigned")
+        used = np.unique(self.assign)
+        if used.size == 1:
+            return self.parts[int(used[0])].compress(v, keys, round_)
+        out = np.empty(v.shape, dtype=np.float64)
+        bits = np.empty(v.shape[:2], dtype=np.float64)
+        for g in used:
+            rows = np.flatnonzero(self.assign == g)
+            out[rows], bits[rows] = self.parts[int(g)].compress(v[rows], keys[rows], round_)
+        return out, bits
+
+    def label(self) -> str:
+        return "+".join(c.label() for c in self.parts)
 
 
 COMPRESSORS: dict[str, type[Compressor]] = {

@@ -124,6 +124,7 @@ class SearchSpec:
     backoff_steps: int
     backoff_tolerance: float
     bits_cap_factor: float
+    trial_batch: int = 1
 
 
 @dataclass(frozen=True)
@@ -234,6 +235,8 @@ SECTIONS: dict[str, dict[str, Param]] = {
         "backoff_steps": Param("int", low=0, default=3),
         "backoff_tolerance": Param("real", low=0, default=0.05),
         "bits_cap_factor": Param("real", low=1, closed="right", default=4.0),
+        # Trials asked at once and simulated in shared engine batches (bittune.batch).
+        "trial_batch": Param("int", low=1, high=64, default=1),
     },
     "start": {
         "seed": Param("int", low=0),

@@ -37,7 +37,7 @@ from .theory import fits, measured_contraction, theory_point
 
 __all__ = [
     "Candidate", "Space", "Objective", "score", "open_storage", "open_study", "enqueue_seeds",
-    "fail_stale_trials", "run_trials", "search_seeds", "stall_window", "COUNTED", "mask_url",
+    "fail_stale_trials", "run_trials", "search_seeds", "stall_window", "COUNTED", "mask_url", "TrialPlan",
 ]
 
 #: Trial states that count against the global budget.
@@ -321,6 +321,18 @@ def score(runs: list[Trajectory], *, target: float, cap: float | None, cost=None
     return float(np.mean(values)), values
 
 
+@dataclass(frozen=True)
+class TrialPlan:
+    """What one trial's simulation needs: its candidate, compressor, stall window, pruning monitor
+    and the study's cost cap when it started."""
+
+    candidate: Candidate
+    compressor: object
+    window: object
+    monitor: "_PruneMonitor"
+    cap: float | None
+
+
 @dataclass
 class Objective:
     """Callable objective for one process: problem, space and the job's budget."""
@@ -338,11 +350,20 @@ class Objective:
     _best: float = field(default=math.inf, repr=False)
 
     def __call__(self, trial: optuna.Trial) -> float:
+        plan = self.plan(trial, self._cap(trial.study))
+        runs = simulate(self.problem, method=plan.candidate.method, compressor=plan.compressor,
+                        step_size=plan.candidate.step_size, seeds=self.seeds, target=self.target,
+                        max_rounds=self.max_rounds, x0=self.x0, params=plan.candidate.params(),
+                        max_bits_per_worker=self.bits_cap(plan.cap), stall_window=plan.window,
+                        monitor=plan.monitor, loss_ref=self.loss_ref)
+        return self.finish(trial, plan, runs)
+
+    def plan(self, trial: optuna.Trial, cap: float | None) -> "TrialPlan":
+        """Draw ``trial``'s candidate and set up what its simulation needs (cap: the study's cost cap)."""
         cand = self.space.suggest(trial)
         trial.set_user_attr("worker", self.worker)
         trial.set_user_attr("pid", os.getpid())
         trial.set_user_attr("candidate", _plain(cand.to_config()))
-        cap = self._cap(trial.study)
         comp = make_compressor(cand.compressor, self.problem.dim, n_workers=self.problem.n_workers)
         window = stall_window(cand.method, cand.sync_probability)
         d = self.problem.dim
@@ -360,11 +381,15 @@ class Objective:
         # Checkpoints start at the cost of four dense rounds and grow geometrically.
         monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at,
                                 start=cost_at(4, 4 * 32.0 * d))
-        bits_cap = cap if self.network is None else self.max_bits
-        runs = simulate(self.problem, method=cand.method, compressor=comp, step_size=cand.step_size,
-                        seeds=self.seeds, target=self.target, max_rounds=self.max_rounds, x0=self.x0,
-                        params=cand.params(), max_bits_per_worker=bits_cap, stall_window=window,
-                        monitor=monitor, loss_ref=self.loss_ref)
+        return TrialPlan(cand, comp, window, monitor, cap)
+
+    def bits_cap(self, cap: float | None) -> float | None:
+        """The engine's bit cap per worker: the cost cap when the cost is bits, else the job's."""
+        return cap if self.network is None else self.max_bits
+
+    def finish(self, trial: optuna.Trial, plan: "TrialPlan", runs: list[Trajectory]) -> float:
+        """Score ``trial``'s runs and record them on it; raises ``TrialPruned`` for a pruned trial."""
+        cap, monitor = plan.cap, plan.monitor
         # Before any trial has reached the target there is no cap; a miss must still score above
         # every possible reach, so its penalty starts from the most a reach could cost.
         floor = cap if cap is not None else self._most_a_reach_costs()
@@ -426,6 +451,9 @@ class _PruneMonitor:
         self.next_cost = start
         self.step = 0
         self.pruned = False
+        #: Checkpoints below this were reported by an earlier attempt of the same trial (a batch
+        #: that a numerical fault stopped, re-run alone): not reported twice.
+        self.reported = 0
 
     def __call__(self, k, index, bits, metric) -> bool:
         self.best[index] = np.minimum(self.best[index], np.where(np.isfinite(metric), metric, np.inf))
@@ -434,7 +462,8 @@ class _PruneMonitor:
         with np.errstate(divide="ignore"):
             progress = np.log10(np.maximum(self.best, 1e-12 * self.target) / self.target)
         value = float(np.mean(np.minimum(progress, 1e6)))
-        self.trial.report(value, self.step)
+        if self.step >= self.reported:
+            self.trial.report(value, self.step)
         self.step += 1
         self.next_cost *= CHECKPOINT_GROWTH
         if self.trial.should_prune():
@@ -573,14 +602,20 @@ def recover_stale_trials(study: optuna.Study) -> None:
 def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: float = 1.0) -> int:
     """Run trials in this process until ``budget`` trials are finished (complete or pruned).
 
-    Each trial runs through ``study.optimize(n_trials=1)``, so database
-    heartbeats work. While the rest of the budget is running in other
+    With ``search.trial_batch`` above 1, trials are asked that many at a time and share
+    engine batches (:mod:`bittune.batch`). Otherwise each trial runs through
+    ``study.optimize(n_trials=1)``, so database heartbeats work. While the rest of the budget is running in other
     processes, this one waits and recovers trials whose heartbeat stopped (a
     crashed machine), so their retries still run. A trial whose number shows
     that the budget was already taken when it started (a race between
     processes) is failed with the reason recorded. Returns how many trials this
     process ran.
     """
+    size = int(getattr(objective.space.spec, "trial_batch", 1))
+    if size > 1:
+        from .batch import run_batches
+
+        return run_batches(study, objective, budget=budget, size=size, poll=poll)
     done = 0
     finished_states = (TrialState.COMPLETE, TrialState.PRUNED)
 

@@ -109,7 +109,9 @@ def simulate(
     ``monitor(k, index, uplink_bits, metric)`` is called after every
     round with the still-running trajectories (their indices into the batch,
     cumulative bits, current metric); if it returns True the batch
-    stops and those trajectories end as ``stopped``.
+    stops and those trajectories end as ``stopped``; if it returns a boolean
+    array over ``index``, only the marked trajectories stop (several trials
+    sharing one batch, each pruned on its own).
     """
     seeds = np.atleast_1d(np.asarray(seeds, dtype=np.int64))
     B, d, n = seeds.shape[0], problem.dim, problem.n_workers
@@ -144,6 +146,7 @@ def simulate(
     best = metric.copy()
     last_gain = np.zeros(B)
     stop = False
+    halted = np.zeros(B, dtype=bool)  # trajectories a monitor stopped on their own
 
     for k in range(max_rounds + 1):
         status = np.full(active.shape, "", dtype=object)
@@ -158,6 +161,7 @@ def simulate(
             status[(status == "") & (k - last_gain[active] >= window[active])] = "stalled"
         if stop:
             status[status == ""] = "stopped"
+        status[(status == "") & halted[active]] = "stopped"
         if k == max_rounds:
             status[status == ""] = "budget"
         done = status != ""
@@ -197,8 +201,12 @@ def simulate(
         row = np.full(B, np.nan)
         row[active] = up[active]
         up_hist.append(row)
-        if monitor is not None and monitor(k + 1, active, up[active], metric):
-            stop = True
+        if monitor is not None:
+            verdict = monitor(k + 1, active, up[active], metric)
+            if np.ndim(verdict) == 0:
+                stop = stop or bool(verdict)
+            else:
+                halted[active[np.asarray(verdict, dtype=bool)]] = True
 
     with np.errstate(over="ignore", invalid="ignore"):
         loss_end = problem.local_losses(final_x).mean(axis=1)

@@ -68,6 +68,9 @@ class Method(ABC):
         """Drop finished trajectories: keep rows ``index`` of every array."""
         self.p = {k: v[index] for k, v in self.p.items()}
         self.state = {k: v[index] for k, v in self.state.items()}
+        keep = getattr(self.compressor, "keep", None)  # a per-trajectory compressor (PerTrajectory)
+        if keep is not None:
+            keep(index)
 
     def _dense(self, grads: np.ndarray) -> np.ndarray:
         return np.full(grads.shape[:2], dense_bits(self.d))

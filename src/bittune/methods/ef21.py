@@ -9,6 +9,8 @@ alpha = 1/(1+omega) (docs/theory.md §1.1). g_i^0 = grad f_i(x^0) (dense, G^0 = 
 
 from __future__ import annotations
 
+import numpy as np
+
 from .base import Method
 
 __all__ = ["EF21"]
@@ -23,7 +25,9 @@ class EF21(Method):
             return grads.mean(axis=1), self._dense(grads)
         gi = self.state["gi"]
         c, bits = self.compressor.compress(grads - gi, keys, round_)
-        if self.compressor.unbiased and self.compressor.omega > 0:
-            c *= 1.0 / (1.0 + self.compressor.omega)
+        if self.compressor.unbiased:  # omega is a scalar, or one value per trajectory (PerTrajectory)
+            omega = np.asarray(self.compressor.omega, dtype=np.float64)
+            scale = 1.0 / (1.0 + omega)
+            c *= scale[:, None, None] if scale.ndim else scale
         gi += c
         return gi.mean(axis=1), bits

@@ -19,7 +19,7 @@ __all__ = ["MARINA"]
 
 class MARINA(Method):
     name = "marina"
-    params = {"sync_probability": lambda c: min(1.0, c.density / c.dim)}
+    params = {"sync_probability": lambda c: np.minimum(1.0, c.density / c.dim)}
 
     def direction(self, grads, keys, round_, X=None):
         if "g" not in self.state:
