@@ -38,7 +38,8 @@ def replay(ws: Workspace, cfg: Config, *, seeds, source: str = "config") -> list
         params["shift_rate"] = cfg.shift_rate
     return simulate(p, method=cfg.method, compressor=comp, step_size=cfg.step_size, seeds=seeds,
                     target=ws.target, max_rounds=ws.job.budget.max_rounds, x0=ws.x0, params=params,
-                    max_bits_per_worker=ws.job.budget.max_bits_per_worker, loss_ref=ws.loss_ref)
+                    max_bits_per_worker=ws.job.budget.max_bits_per_worker, loss_ref=ws.loss_ref,
+                    precision=cfg.precision or "float64")  # as tuned, whatever the job says now
 
 
 def stored_reference(cfg: Config, job: Job) -> dict | None:

@@ -335,6 +335,7 @@ class Objective:
     worker: int = 0
     network: object = None  # a NetworkModel for the objective "seconds"; None: bits
     loss_ref: float | None = None  # f_ref of a loss-gap target (then ``target`` is the gap); None: ||grad f||^2
+    precision: str = "float64"  # the job's engine.precision
     _best: float = field(default=math.inf, repr=False)
 
     def __call__(self, trial: optuna.Trial) -> float:
@@ -364,7 +365,7 @@ class Objective:
         runs = simulate(self.problem, method=cand.method, compressor=comp, step_size=cand.step_size,
                         seeds=self.seeds, target=self.target, max_rounds=self.max_rounds, x0=self.x0,
                         params=cand.params(), max_bits_per_worker=bits_cap, stall_window=window,
-                        monitor=monitor, loss_ref=self.loss_ref)
+                        monitor=monitor, loss_ref=self.loss_ref, precision=self.precision)
         # Before any trial has reached the target there is no cap; a miss must still score above
         # every possible reach, so its penalty starts from the most a reach could cost.
         floor = cap if cap is not None else self._most_a_reach_costs()
