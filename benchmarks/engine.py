@@ -114,9 +114,9 @@ PRECISION_GOAL = 8.0  # float32 at B = 32 per trajectory vs float64 at B = 1 (is
 
 def precision_rows(problem, floor_fn, rounds: int, repeat: int) -> bool:
     """float64 at B = 1 and float32 at B = 32 (and float64 at B = 32 for scale), per trajectory."""
-    print(f"\n[dense] single precision: per-trajectory round cost, float64 B=1 over float32 B=32")
+    print("\n[dense] single precision: round time x floor; gain = per-trajectory cost of float64 B=1 over B=32")
     print(f"{'method':<8} {'compressor':<10} {'f64 B=1':>8} {'f64 B=32':>9} {'f32 B=32':>9} "
-          f"{'(x floor)':>9} {'f64 gain':>9} {'f32 gain':>9}")
+          f"{'f64 gain':>9} {'f32 gain':>9}")
     ok = True
     for method, spec, params in PRECISION_METHODS:
         _, r1 = paired_ratio(floor_fn, lambda: round_time(problem, method, spec, params, 1, rounds), repeat)
@@ -124,7 +124,7 @@ def precision_rows(problem, floor_fn, rounds: int, repeat: int) -> bool:
         _, r32 = paired_ratio(floor_fn, lambda: round_time(problem, method, spec, params, 32, rounds,
                                                            "float32"), repeat)
         gain64, gain32 = 32 * r1 / r64, 32 * r1 / r32
-        print(f"{method:<8} {spec:<10} {r1:8.2f} {r64:9.2f} {r32:9.2f} {'':>9} {gain64:8.1f}x {gain32:8.1f}x")
+        print(f"{method:<8} {spec:<10} {r1:8.2f} {r64:9.2f} {r32:9.2f} {gain64:8.1f}x {gain32:8.1f}x")
         if method == "marina":
             met = gain32 >= PRECISION_GOAL
             ok &= met

@@ -167,3 +167,31 @@ def test_config_records_precision():
     assert parse_config({**doc, "precision": None}, source="c.yaml").precision is None
     with pytest.raises(InputError, match="precision"):
         parse_config({**doc, "precision": "float16"}, source="c.yaml")
+
+
+def test_replay_uses_the_config_precision(tmp_path):
+    from bittune.job import load_job
+    from bittune.replay import replay
+    from bittune.workspace import open_job
+
+    rng = np.random.default_rng(4)
+    lines = [f"{1 if rng.random() < 0.5 else -1} " + " ".join(f"{j + 1}:{rng.standard_normal():.6f}" for j in range(5))
+             for _ in range(60)]
+    (tmp_path / "d.svm").write_text("\n".join(lines) + "\n")
+    (tmp_path / "job.yaml").write_text("data: d.svm\nmodel: logistic_nonconvex\nworkers: {count: 3, split: iid}\n"
+                                       "target: {grad_norm_sq: 1e-6}\nbudget: {max_rounds: 200}\n")
+    ws = open_job(load_job(tmp_path / "job.yaml"))  # the job says float64 (the default)
+    doc = {"bittune_config": 1, "method": "marina", "compressor": {"name": "rand_k", "k": 2}, "step_size": 0.5,
+           "sync_probability": 0.3}
+    runs = {p: replay(ws, parse_config({**doc, "precision": p}, source="c.yaml"), seeds=[0, 1])
+            for p in ("float64", "float32")}
+    comp = make_compressor("rand_k:2", 5)
+    direct = simulate(ws.problem, method="marina", compressor=comp, step_size=0.5, seeds=[0, 1], target=ws.target,
+                      max_rounds=200, x0=ws.x0, params={"sync_probability": 0.3}, precision="float32")
+    for a, b in zip(runs["float32"], direct):
+        np.testing.assert_array_equal(a.x, b.x)  # replay ran the float32 engine, as the config says
+    assert any(not np.array_equal(a.x, b.x) for a, b in zip(runs["float32"], runs["float64"]))
+    # A config without the key (older files) replays in float64.
+    legacy = replay(ws, parse_config(doc, source="c.yaml"), seeds=[0, 1])
+    for a, b in zip(legacy, runs["float64"]):
+        np.testing.assert_array_equal(a.x, b.x)
