@@ -195,3 +195,33 @@ def test_replay_uses_the_config_precision(tmp_path):
     legacy = replay(ws, parse_config(doc, source="c.yaml"), seeds=[0, 1])
     for a, b in zip(legacy, runs["float64"]):
         np.testing.assert_array_equal(a.x, b.x)
+
+
+@pytest.mark.slow
+def test_tune_records_float32_and_replay_follows(tmp_path, capsys):
+    """End to end: a float32 job tunes, the config says float32, replay of it reaches the target."""
+    import json
+
+    from bittune.cli import main
+    from bittune.config import load_config
+
+    rng = np.random.default_rng(9)
+    w = rng.standard_normal(6)
+    lines = []
+    for _ in range(240):
+        a = rng.standard_normal(6)
+        label = 1 if rng.random() < 1.0 / (1.0 + np.exp(-a @ w)) else -1
+        lines.append(f"{label} " + " ".join(f"{j + 1}:{v:.6f}" for j, v in enumerate(a)))
+    (tmp_path / "d.svm").write_text("\n".join(lines) + "\n")
+    (tmp_path / "job.yaml").write_text(
+        "data: d.svm\nmodel: logistic_nonconvex\nworkers: {count: 4, split: iid}\n"
+        "target: {grad_norm_sq: 1e-4}\nbudget: {max_rounds: 2000}\nengine: {precision: float32}\n"
+        "search: {methods: [marina], compressors: [rand_k], trials: 6, validation_seeds: 2, finalists: 1,"
+        " backoff_steps: 0}\n")
+    cfg_path = tmp_path / "cfg.yaml"
+    assert main(["tune", str(tmp_path / "job.yaml"), "-o", str(cfg_path), "--run-dir", str(tmp_path / "run")]) == 0
+    assert load_config(cfg_path).precision == "float32"
+    capsys.readouterr()
+    assert main(["replay", str(cfg_path), "--job", str(tmp_path / "job.yaml"), "--seeds", "2", "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["all_reached"]
