@@ -35,7 +35,8 @@ def test_a_batch_in_another_process_matches_the_batch_here(cancer):
 
 def _workspace(problem, spec):
     budget = SimpleNamespace(max_rounds=300, max_bits_per_worker=None)
-    return Workspace(job=SimpleNamespace(budget=budget, search=spec), dataset=None, parts=[], problem=problem,
+    job = SimpleNamespace(budget=budget, search=spec, engine=SimpleNamespace(precision="float64"))
+    return Workspace(job=job, dataset=None, parts=[], problem=problem,
                      x0=np.zeros(problem.dim), target=1e-3)
 
 

@@ -82,7 +82,8 @@ def simulate_group(objective, plans) -> list[list]:
                     step_size=np.repeat([c.step_size for c in cands], S), seeds=np.tile(objective.seeds, len(plans)),
                     target=objective.target, max_rounds=objective.max_rounds, x0=objective.x0, params=params,
                     max_bits_per_worker=objective.bits_cap(plans[0].cap), stall_window=window,
-                    monitor=_SplitMonitor([p.monitor for p in plans], S), loss_ref=objective.loss_ref)
+                    monitor=_SplitMonitor([p.monitor for p in plans], S), loss_ref=objective.loss_ref,
+                    precision=objective.precision)
     return [runs[i * S:(i + 1) * S] for i in range(len(plans))]
 
 

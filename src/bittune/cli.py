@@ -110,6 +110,8 @@ def _probe_doc(ws, constants, report) -> dict:
         "cost": {"oracle_calls": report.oracle_calls, "seconds": report.seconds,
                  "probe_points": int(len(report.points)), "raised_to_secant": report.raised},
         "constants": c,
+        # half of every worker's rows against all of them (None: the model has no per-sample rows)
+        "sample_stability": report.sample_stability,
     }
 
 
@@ -139,6 +141,12 @@ def _print_probe(ws, constants, report) -> None:
           f"heterogeneity (1/n) sum ||grad f_i - grad f||^2 = {constants.heterogeneity0:.4g}")
     print(f"probe cost: {report.oracle_calls} oracle calls on {len(report.points)} probe points, "
           f"{report.seconds:.2f} s; {report.raised} estimates raised to a secant ratio")
+    st = report.sample_stability
+    if st is not None:
+        moved = ", ".join(f"{k} {v:.3f}" if v is not None else f"{k} -" for k, v in st["ratio"].items())
+        print(f"sample stability (half of each worker's rows / all rows, at {st['points']} points): {moved}; "
+              f"{st['oracle_calls']} extra oracle calls, {st['seconds']:.2f} s (ratios near 1: the sample is "
+              f"large enough)")
 
 
 def _cmd_theory(args: argparse.Namespace) -> int:

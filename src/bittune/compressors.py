@@ -75,17 +75,20 @@ class Compressor(ABC):
     ) -> tuple[np.ndarray, np.ndarray]:
         """Compress every message of a ``(B, n, d)`` block.
 
-        Returns the compressed block (float64, same shape, ``v`` untouched) and
-        the exact bits of each message, float64 of shape ``(B, n)``.
+        Returns the compressed block (same shape, ``v`` untouched; float32 for a
+        float32 block, else float64) and the exact bits of each message, float64
+        of shape ``(B, n)``.
         """
-        v = np.asarray(v, dtype=np.float64)
+        v = np.asarray(v)
+        v = v if v.dtype == np.float32 else v.astype(np.float64, copy=False)
         keys = np.asarray(keys, dtype=np.uint64)
         if v.ndim != 3 or v.shape[2] != self.dim or keys.shape != (v.shape[0],):
             raise ValueError(
                 f"{self.label()}: expected v of shape (B, n, {self.dim}) and keys of shape (B,),"
                 f" got {v.shape} and {keys.shape}"
             )
-        return self._apply(v, keys, int(round_))
+        out, bits = self._apply(v, keys, int(round_))
+        return out.astype(v.dtype, copy=False), bits
 
     @abstractmethod
     def _apply(
@@ -418,11 +421,14 @@ class PerTrajectory:
         used = np.unique(self.assign)
         if used.size == 1:
             return self.parts[int(used[0])].compress(v, keys, round_)
-        out = np.empty(v.shape, dtype=np.float64)
+        out = None
         bits = np.empty(v.shape[:2], dtype=np.float64)
         for g in used:
             rows = np.flatnonzero(self.assign == g)
-            out[rows], bits[rows] = self.parts[int(g)].compress(v[rows], keys[rows], round_)
+            part, bits[rows] = self.parts[int(g)].compress(v[rows], keys[rows], round_)
+            if out is None:  # the parts' dtype (float32 blocks stay float32)
+                out = np.empty(v.shape, dtype=part.dtype)
+            out[rows] = part
         return out, bits
 
     def label(self) -> str:

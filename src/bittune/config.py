@@ -57,6 +57,8 @@ TOP = {
     "shift_rate": _PROBABILITY,
     "clients": Param("int", low=1),
     "minibatch": Param("int", low=1),
+    # the engine precision the config was tuned with (replay uses it); absent: float64
+    "precision": Param("choice", options=("float64", "float32")),
 }
 #: Method-specific keys: key -> {method: required?}. Any other method rejects the key.
 METHOD_KEYS = {
@@ -131,6 +133,7 @@ class Config:
     extra: dict = field(default_factory=dict)  # other top-level sections, kept verbatim
     clients: int | None = None  # pp_marina: clients per compressed round (None: all)
     minibatch: int | None = None  # vr_marina: rows per worker per compressed round
+    precision: str | None = None  # engine precision tuned with (None: float64, older configs)
 
 
 def parse_config(mapping: Any, *, source: str) -> Config:
@@ -174,7 +177,7 @@ def parse_config(mapping: Any, *, source: str) -> Config:
         raise InputError(problems, source=source)
     return Config(method=method, compressor=compressor, step_size=top["step_size"],
                   sync_probability=top["sync_probability"], shift_rate=top["shift_rate"],
-                  clients=top["clients"], minibatch=top["minibatch"],
+                  clients=top["clients"], minibatch=top["minibatch"], precision=top["precision"],
                   dimension=sizes["dimension"], workers=sizes["workers"], extra=extra)
 
 
@@ -214,7 +217,7 @@ def config_to_dict(cfg: Config) -> dict:
     """Plain mapping in the documented key order; unset optional keys left out."""
     out: dict[str, Any] = {"bittune_config": FORMAT_VERSION, "method": cfg.method,
                            "compressor": dict(cfg.compressor), "step_size": cfg.step_size}
-    for key in ("sync_probability", "shift_rate", "clients", "minibatch"):
+    for key in ("sync_probability", "shift_rate", "clients", "minibatch", "precision"):
         if getattr(cfg, key) is not None:
             out[key] = getattr(cfg, key)
     sizes = {k: getattr(cfg, k) for k in ("dimension", "workers") if getattr(cfg, k) is not None}

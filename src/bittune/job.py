@@ -25,7 +25,7 @@ from bittune.errors import InputError
 
 __all__ = [
     "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "NetworkSpec",
-    "AssumeSpec", "Job",
+    "AssumeSpec", "EngineSpec", "Job",
     "load_job", "parse_job", "data_digest", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
 ]
 
@@ -37,6 +37,9 @@ DATA_FORMATS = ("svmlight", "csv", "npz")
 #: File extension -> data format, used when ``data.format`` is not given.
 _EXTENSIONS = {".svm": "svmlight", ".svmlight": "svmlight", ".libsvm": "svmlight",
                ".txt": "svmlight", ".csv": "csv", ".npz": "npz"}
+#: Models whose oracle runs in float32 (``engine.precision``); the others keep arrays of their own
+#: in float64 (``Problem.float32_ok``).
+_FLOAT32_MODELS = ("logistic_nonconvex", "least_squares")
 #: Default ``regularization`` per model.
 _DEFAULT_REGULARIZATION = {"logistic_nonconvex": 0.1, "least_squares": 0.0, "softmax": 1e-3, "mlp": 1e-4,
                            "plugin": 0.0}  # softmax/mlp/plugin: our choice, no source
@@ -91,6 +94,14 @@ class AssumeSpec:
     """What the user states about f that the probe cannot measure."""
 
     pl_mu: float | None  # Polyak-Lojasiewicz constant: (1/2)||grad f||^2 >= mu (f - f_inf)
+
+
+@dataclass(frozen=True)
+class EngineSpec:
+    """How the simulations run: ``precision`` of the trajectory arithmetic (the probe and the
+    gradient check always run in float64)."""
+
+    precision: str = "float64"
 
 
 @dataclass(frozen=True)
@@ -154,6 +165,7 @@ class Job:
     digest: str  # sha256 hex of the job file bytes (and of a plugin model's .py file)
     allow_code: bool = False  # --allow-code: a plugin model may be imported
     assume: AssumeSpec = AssumeSpec(pl_mu=None)
+    engine: EngineSpec = EngineSpec()
 
 
 #: Top-level keys that hold a single value ("" section).
@@ -202,6 +214,9 @@ SECTIONS: dict[str, dict[str, Param]] = {
     },
     "assume": {  # optional statements about f: the PL theory rules (docs/theory.md §2.7, §2.9) use pl_mu
         "pl_mu": Param("real", low=0, closed="right"),
+    },
+    "engine": {  # float32 halves the bytes each data pass streams (README, "Performance")
+        "precision": Param("choice", options=("float64", "float32"), default="float64"),
     },
     "probe": {
         # Upper bounds keep a typo from hanging the probe (our choice, no source).
@@ -312,6 +327,10 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
              for k, v in mapping[s].items() if v is not None}
     data, start = _check_data(values, base_dir, problems), _check_start(values, base_dir, problems)
     _check_target(mapping.get("target"), values, problems)
+    model = values[""].get("model")
+    if values["engine"].get("precision") == "float32" and model is not None and model not in _FLOAT32_MODELS:
+        problems.append(f"engine.precision: float32 is available for the models {', '.join(_FLOAT32_MODELS)}, "
+                        f"not {model} (use float64)")
     if problems:
         raise InputError(problems, source=source)
     if values[""].get("model") == "plugin" and not values[""].get("plugin"):
@@ -334,6 +353,7 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
         model_options=_model_options(top, values, base_dir),
         network=NetworkSpec(**values["network"]),
         raw=deepcopy(mapping), digest=digest, assume=AssumeSpec(**values["assume"]),
+        engine=EngineSpec(**values["engine"]),
     )
 
 

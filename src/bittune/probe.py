@@ -19,7 +19,7 @@ from .constants import Constants
 from .errors import GradientCheckError, InputError
 from .simulate import simulate
 
-__all__ = ["GradientCheck", "ProbeReport", "check_gradients", "estimate_constants"]
+__all__ = ["GradientCheck", "ProbeReport", "check_gradients", "estimate_constants", "half_sample_weights"]
 
 _EPS = np.finfo(np.float64).eps
 _TINY = np.finfo(np.float64).tiny
@@ -33,6 +33,11 @@ _SPREAD = 1.0  # radius of the random probe starts, in units of 1 + ||x0|| (our 
 _QUICK_ITERS = 10  # power iterations at x0 when the model has no closed-form bound
 _SAME = 1e-6  # secant pairs closer than this (relative to 1 + ||x||) are skipped
 _MAX_ELEMENTS = 2**24  # an oracle call on more numbers than this is split (memory)
+# Sample stability: probe points of the half-sample power iteration (x0 and points spread over the
+# list, as for calL): about 3/15 of the main power iteration's points at the defaults (our choice).
+_STABILITY_POINTS = 3
+#: Constants compared between the half and the full sample (L_max: the largest per-worker L_i).
+STABILITY_KEYS = ("L", "L_plus", "L_pm", "L_max")
 
 
 @dataclass
@@ -80,6 +85,9 @@ class ProbeReport:
     secant: dict  # maxima of the secant ratios
     raised: int  # how many of the n + 3 values were raised to a secant
     gradient_check: GradientCheck
+    #: Half sample against full sample at the same points (see :func:`_sample_stability`); None when
+    #: the model has no per-sample rows.
+    sample_stability: dict | None = None
 
     def to_dict(self) -> dict:
         def plain(d: dict) -> dict:
@@ -89,7 +97,7 @@ class ProbeReport:
                 "oracle_points": self.oracle_points, "seconds": self.seconds,
                 "step_size": self.step_size, "step_source": self.step_source,
                 "local": plain(self.local), "secant": plain(self.secant), "raised": self.raised,
-                "gradient_check": self.gradient_check.to_dict()}
+                "gradient_check": self.gradient_check.to_dict(), "sample_stability": self.sample_stability}
 
 
 class _Counted:
@@ -197,7 +205,7 @@ def _hvp(oracle, pts: np.ndarray, h: np.ndarray, dirs: np.ndarray, weights: np.n
     return (G[0] - G[1]) / (2.0 * h[None, :, None, None]) * norm
 
 
-def _power(oracle, pts: np.ndarray, *, iters: int, rng) -> dict:
+def _power(oracle, pts: np.ndarray, *, iters: int, rng, per_point: bool = False) -> dict:
     """Local L_i, L_-, L_+, L_pm at every point by power iteration, one oracle call per iteration.
 
     Six stages share each call: per-worker directions v_i (H_i), a shared u
@@ -209,6 +217,7 @@ def _power(oracle, pts: np.ndarray, *, iters: int, rng) -> dict:
     the same way with sum_i z_i = 0, so that K^T z = sum_i H_i z_i / sqrt(n).
     Each estimate is a norm ||A y|| of a unit y, a lower bound on ||A||_2 that
     rises with the iterations (Cauchy-Schwarz); the maximum over iterations is kept.
+    Returns the maxima over the points, or with ``per_point`` each point's values.
     """
     P, d = pts.shape
     n = oracle.n_workers
@@ -234,7 +243,58 @@ def _power(oracle, pts: np.ndarray, *, iters: int, rng) -> dict:
         for key, value in (("L_workers", nv[..., 0]), ("L", nu[:, 0]), ("L_plus", nJw.ravel()),
                            ("L_plus", nJz[:, 0]), ("L_pm", nKw.ravel()), ("L_pm", nKz[:, 0])):
             np.maximum(best[key], np.nan_to_num(value), out=best[key])
-    return {key: value.max(axis=0) for key, value in best.items()}
+    return best if per_point else {key: value.max(axis=0) for key, value in best.items()}
+
+
+def half_sample_weights(sizes, m_max: int, seed: int) -> np.ndarray:
+    """Row weights (n, m_max) of the half sample: worker i keeps max(1, floor(m_i / 2)) of its m_i rows,
+    drawn without replacement by ``numpy.random.default_rng([seed, 0])``, each with weight 1/kept; every
+    other row (and padding) gets 0. With these weights the minibatch oracle ``weighted_grads`` is the
+    gradient of f_i on the kept rows (regulariser included)."""
+    sizes = np.asarray(sizes, dtype=np.int64)
+    rng = np.random.default_rng([int(seed), 0])
+    W = np.zeros((sizes.size, int(m_max)))
+    for i, m in enumerate(sizes):  # once per probe, not in a hot path
+        keep = max(1, int(m) // 2)
+        W[i, rng.choice(int(m), size=keep, replace=False)] = 1.0 / keep
+    return W
+
+
+class _Weighted:
+    """The local-gradient oracle of ``problem`` on a weighted sample (weights (n, m_max)), served by its
+    minibatch oracle: f_i^w = sum_j w_ij f_ij."""
+
+    def __init__(self, problem, weights: np.ndarray):
+        self.problem, self.weights = problem, weights
+        self.n_workers, self.dim = int(problem.n_workers), int(problem.dim)
+
+    def local_grads(self, X, *, with_loss: bool = False):
+        X = np.asarray(X, dtype=np.float64)
+        return self.problem.weighted_grads(X, np.broadcast_to(self.weights, (X.shape[0], *self.weights.shape))), None
+
+
+def _stable_values(local: dict) -> dict:
+    return {"L": float(local["L"]), "L_plus": float(local["L_plus"]), "L_pm": float(local["L_pm"]),
+            "L_max": float(np.max(local["L_workers"]))}
+
+
+def _sample_stability(problem, pts: np.ndarray, full: dict, *, iters: int, seed: int) -> dict:
+    """How the local constants move when every worker's shard is halved: the power iteration of
+    :func:`_power` (same iterations) on the half sample (:func:`half_sample_weights`) at
+    ``_STABILITY_POINTS`` of the probe points, against the full sample's values (``full``, per point)
+    at the same points. ``ratio`` = half / full per constant (1: the sample is large enough that
+    halving it does not move the constant). Values are before ``safety``."""
+    start = time.perf_counter()
+    pick = np.unique(np.linspace(0, len(pts) - 1, min(_STABILITY_POINTS, len(pts))).astype(int))
+    W = half_sample_weights(problem.worker_sizes, problem.shards.m_max, seed)
+    oracle = _Counted(_Weighted(problem, W))
+    half = _power(oracle, pts[pick], iters=iters, rng=np.random.default_rng([int(seed), 1]))
+    whole = _stable_values({k: v[pick].max(axis=0) for k, v in full.items()})
+    halved = _stable_values(half)
+    ratio = {k: (halved[k] / whole[k] if whole[k] > 0 else None) for k in STABILITY_KEYS}  # None: 0 / 0
+    return {"ratio": ratio, "half": halved, "full": whole, "points": int(pick.size),
+            "rows_kept": [int(v) for v in np.count_nonzero(W, axis=1)], "seed": int(seed),
+            "oracle_calls": oracle.calls, "oracle_points": oracle.rows, "seconds": time.perf_counter() - start}
 
 
 def _sample_smoothness(problem, pts: np.ndarray, *, iters: int, draws: int, rng) -> np.ndarray:
@@ -321,6 +381,7 @@ def estimate_constants(
     gradient_tolerance: float = 1e-5,
     strict: bool = True,
     sample_smoothness: bool = False,
+    sample_stability: bool = True,
 ) -> tuple[Constants, ProbeReport]:
     """Estimate the smoothness constants of docs/theory.md §3.1 near the path from ``x0``.
 
@@ -353,7 +414,10 @@ def estimate_constants(
     Cost: runs x (run_rounds + 2) oracle calls for the runs, 2 for the
     gradients and the gradient check, ``power_iters`` for the power iteration
     (on 12 P points each), and 10 more without a closed-form bound; reported
-    in ``report.oracle_calls``. Raises ValueError on invalid arguments and when
+    in ``report.oracle_calls``. With ``sample_stability`` (models with
+    per-sample rows) ``power_iters`` more calls on 12 x 3 points redo the power
+    iteration on a seeded half of every worker's rows
+    (``report.sample_stability``: its own calls, points and seconds). Raises ValueError on invalid arguments and when
     the lower bound on f is infinite or above f(x0).
     """
     start = time.perf_counter()
@@ -410,7 +474,8 @@ def estimate_constants(
     if strict:
         check.raise_if_failed()
 
-    local = _power(oracle, pts, iters=power_iters, rng=rng)
+    per_point = _power(oracle, pts, iters=power_iters, rng=rng, per_point=True)
+    local = {key: value.max(axis=0) for key, value in per_point.items()}
     secant = _secants(pts, grads)
     raised = int(np.sum(secant["L_workers"] > local["L_workers"]))
     raised += sum(int(secant[k] > local[k]) for k in ("L", "L_plus", "L_pm"))
@@ -426,6 +491,10 @@ def estimate_constants(
         per = np.maximum(raw * safety, est["L_workers"])
         sample_L = float(np.sqrt(np.mean(per * per)))
         sizes = np.asarray(problem.worker_sizes, dtype=np.float64)
+    stability = None
+    if sample_stability and getattr(problem, "has_samples", False) and hasattr(problem, "weighted_grads"):
+        # Drawn last from rng, so every earlier estimate is the same with or without this stage.
+        stability = _sample_stability(problem, pts, per_point, iters=power_iters, seed=int(rng.integers(2**63)))
     f0 = float(losses[0].mean())
     if f0 < lower:
         raise ValueError(f"lower_bound must be <= f(x0) = {f0:.6g}, got {lower:.6g}")
@@ -442,7 +511,8 @@ def estimate_constants(
     )
     report = ProbeReport(points=pts, oracle_calls=oracle.calls, oracle_points=oracle.rows,
                          seconds=time.perf_counter() - start, step_size=float(step), step_source=source,
-                         local=local, secant=secant, raised=raised, gradient_check=check)
+                         local=local, secant=secant, raised=raised, gradient_check=check,
+                         sample_stability=stability)
     return constants, report
 
 

@@ -347,6 +347,7 @@ class Objective:
     worker: int = 0
     network: object = None  # a NetworkModel for the objective "seconds"; None: bits
     loss_ref: float | None = None  # f_ref of a loss-gap target (then ``target`` is the gap); None: ||grad f||^2
+    precision: str = "float64"  # the job's engine.precision
     _best: float = field(default=math.inf, repr=False)
 
     def __call__(self, trial: optuna.Trial) -> float:
@@ -355,7 +356,7 @@ class Objective:
                         step_size=plan.candidate.step_size, seeds=self.seeds, target=self.target,
                         max_rounds=self.max_rounds, x0=self.x0, params=plan.candidate.params(),
                         max_bits_per_worker=self.bits_cap(plan.cap), stall_window=plan.window,
-                        monitor=plan.monitor, loss_ref=self.loss_ref)
+                        monitor=plan.monitor, loss_ref=self.loss_ref, precision=self.precision)
         return self.finish(trial, plan, runs)
 
     def plan(self, trial: optuna.Trial, cap: float | None) -> "TrialPlan":

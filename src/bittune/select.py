@@ -187,7 +187,7 @@ def _batches(ws, candidates: list[Candidate], seeds: list[int]) -> list[tuple[li
                               seeds=np.tile(seeds, len(idx)), target=ws.target, max_rounds=job.budget.max_rounds,
                               x0=ws.x0, params=params, max_bits_per_worker=job.budget.max_bits_per_worker,
                               stall_window=stall_window(first.method, params.get("sync_probability")),
-                              loss_ref=ws.loss_ref)))
+                              loss_ref=ws.loss_ref, precision=job.engine.precision)))
     return out
 
 

@@ -15,8 +15,9 @@ import numpy as np
 
 from ._random import trajectory_keys
 from .methods import dense_bits, make_method
+from .problems.base import PRECISIONS
 
-__all__ = ["Trajectory", "STATUS", "simulate", "absolute_target"]
+__all__ = ["Trajectory", "STATUS", "simulate", "absolute_target", "PRECISIONS"]
 
 #: Status of a finished trajectory, with the message shown to users.
 STATUS = {
@@ -91,6 +92,7 @@ def simulate(
     stall_window=None,
     monitor=None,
     loss_ref: float | None = None,
+    precision: str = "float64",
 ) -> list[Trajectory]:
     """Simulate ``len(seeds)`` trajectories of ``method`` at once.
 
@@ -112,20 +114,35 @@ def simulate(
     stops and those trajectories end as ``stopped``; if it returns a boolean
     array over ``index``, only the marked trajectories stop (several trials
     sharing one batch, each pruned on its own).
+
+    ``precision`` "float32" runs the trajectory arithmetic (iterates, method
+    state, compressed messages, the data passes) in single precision on the
+    problem's float32 twin (:meth:`Problem.in_precision`); the stopping
+    metric ||grad f||^2 is still summed in float64 (:func:`_norm_sq`), and
+    results (curves, last iterates) are float64. Bits do not depend on it
+    except through value-dependent message sizes (Top-K ties, dithering nnz).
     """
     seeds = np.atleast_1d(np.asarray(seeds, dtype=np.int64))
     B, d, n = seeds.shape[0], problem.dim, problem.n_workers
+    if precision not in PRECISIONS:
+        raise ValueError(f"precision must be one of {', '.join(PRECISIONS)}, got {precision!r}")
+    if precision != "float64":
+        if not hasattr(problem, "in_precision"):
+            raise ValueError(f"precision {precision}: the model {getattr(problem, 'name', '?')!r} has no "
+                             f"{precision} oracle")
+        problem = problem.in_precision(precision)
+    dtype = PRECISIONS[precision]
     keys_all = trajectory_keys(seeds)
-    step_all = np.broadcast_to(np.asarray(step_size, dtype=np.float64), (B,)).copy()
+    step_all = np.broadcast_to(np.asarray(step_size, dtype=dtype), (B,)).copy()
     meth = make_method(method, compressor=compressor, n_workers=n, dim=d, batch=B, **(params or {}))
     meth.bind(problem)
     x0 = np.zeros(d) if x0 is None else np.asarray(x0, dtype=np.float64)
-    X = np.broadcast_to(x0, (B, d)).copy()
+    X = np.broadcast_to(x0.astype(dtype), (B, d)).copy()
 
     grads, loss0 = problem.local_grads(X, with_loss=True)
     gn = _norm_sq(grads)
     track_loss = loss_ref is not None
-    f_hist = [loss0.mean(axis=1)] if track_loss else None  # f(x^k) every round (loss-gap target)
+    f_hist = [loss0.mean(axis=1, dtype=np.float64)] if track_loss else None  # f(x^k) every round (loss-gap target)
     metric = f_hist[0] - loss_ref if track_loss else gn  # what the target and the stall rule see
     limit = divergence_factor * gn
     active = np.arange(B)
@@ -139,7 +156,7 @@ def simulate(
     sizes = np.ones(n) if sizes is None else np.asarray(sizes, dtype=np.float64)
     gn_hist = [gn.copy()]
     up_hist = [up.copy()]
-    loss_log = [(0, active.copy(), loss0.mean(axis=1))]
+    loss_log = [(0, active.copy(), loss0.mean(axis=1, dtype=np.float64))]
     out: dict[int, tuple[str, int]] = {}
     final_x = np.empty((B, d))
     window = None if stall_window is None else np.broadcast_to(np.asarray(stall_window, dtype=np.float64), (B,))
@@ -185,16 +202,16 @@ def simulate(
         # Overflow and NaN are expected on diverging trajectories: they are
         # caught by the divergence test above, not raised.
         with np.errstate(over="ignore", invalid="ignore"):
-            X = X - step[:, None] * g
+            X = X - step[:, None] * g.astype(dtype, copy=False)  # a method may upcast its state
             grads, lossk = problem.local_grads(X, with_loss=want_loss or track_loss)
             gn = _norm_sq(grads)
-            metric = lossk.mean(axis=1) - loss_ref if track_loss else gn
+            metric = lossk.mean(axis=1, dtype=np.float64) - loss_ref if track_loss else gn
         if track_loss:
             row = np.full(B, np.nan)
-            row[active] = lossk.mean(axis=1)
+            row[active] = lossk.mean(axis=1, dtype=np.float64)
             f_hist.append(row)
         if want_loss:
-            loss_log.append((k + 1, active.copy(), lossk.mean(axis=1)))
+            loss_log.append((k + 1, active.copy(), lossk.mean(axis=1, dtype=np.float64)))
         row = np.full(B, np.nan)
         row[active] = gn
         gn_hist.append(row)
@@ -242,5 +259,8 @@ def simulate(
 
 
 def _norm_sq(grads: np.ndarray) -> np.ndarray:
-    g = grads.mean(axis=1)
+    """||mean_i g_i||^2 per trajectory, summed in float64 whatever the gradients' type: the mean
+    of n float32 gradients near a stationary point cancels, and a float32 sum over n and d would
+    add its own rounding (about sqrt(n d) eps_32 relative) to the one test that stops a run."""
+    g = grads.mean(axis=1, dtype=np.float64)
     return np.einsum("bd,bd->b", g, g)

@@ -177,7 +177,8 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
             ws = prep.ws
             objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                                   max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
-                                  seeds=search_seeds(spec), worker=0, network=prep.network, loss_ref=ws.loss_ref)
+                                  seeds=search_seeds(spec), worker=0, network=prep.network, loss_ref=ws.loss_ref,
+                                  precision=job.engine.precision)
             run_trials(open_study(store, name, sampler_seed=sampler_seeds[0], pruner=spec.pruner), objective,
                        budget=spec.trials)
         else:
@@ -278,7 +279,8 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int | None =
         network = None if net is None else NetworkModel(**net)
         objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                               max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
-                              seeds=search_seeds(job.search), worker=index, network=network, loss_ref=ws.loss_ref)
+                              seeds=search_seeds(job.search), worker=index, network=network, loss_ref=ws.loss_ref,
+                              precision=job.engine.precision)
         return run_trials(study, objective, budget=budget or int(attrs.get("budget", job.search.trials)))
 
 
@@ -369,7 +371,7 @@ def _relative(path, base: Path) -> str:
 def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str, output: Path | None = None) -> dict:
     ws, job, constants, spec = prep.ws, prep.job, prep.constants, prep.job.search
     w, b = sel.winner.summary(), sel.baseline.summary()
-    doc = {"bittune_config": 1, **sel.winner.candidate.to_config(),
+    doc = {"bittune_config": 1, **sel.winner.candidate.to_config(), "precision": job.engine.precision,
            "problem": {"dimension": int(ws.problem.dim), "workers": int(ws.problem.n_workers)}}
     doc["target"] = ws.target_doc()  # the kind, the job's value, the absolute threshold (and f_ref)
     doc["expected"] = {

@@ -21,6 +21,7 @@ Two shapes of input are served in one pass each:
 
 from __future__ import annotations
 
+import copy
 import os
 from concurrent.futures import ThreadPoolExecutor
 from typing import Callable
@@ -96,6 +97,16 @@ class Block:
             # round streams (measured on 2 cores).
             self._a3 = a3
 
+    def astype(self, dtype) -> "Block":
+        """A copy whose rows and targets are stored in ``dtype`` (the mask and sizes are shared)."""
+        out = copy.copy(self)
+        out.y = self.y.astype(dtype)
+        if self.sparse:
+            out._flat, out._blk, out._blk_t = (m.astype(dtype) for m in (self._flat, self._blk, self._blk_t))
+        else:
+            out._a3 = self._a3.astype(dtype)
+        return out
+
     def forward(self, X: np.ndarray) -> np.ndarray:
         """Margins ``z[b, i, j] = a_ij . x`` as a (B, nb, m) array (a fresh array)."""
         nb, m, d = self.nb, self.m, self.d
@@ -149,6 +160,18 @@ class Shards:
             Block(rows[a:b], targets[a:b], lo=int(a), m_max=self.m_max, dim=self.dim)
             for a, b in zip(edges[:-1], edges[1:])
         ]
+
+    @property
+    def dtype(self) -> np.dtype:
+        """Floating type the rows are stored in (float64 unless made by :meth:`astype`)."""
+        return self.blocks[0].y.dtype
+
+    def astype(self, dtype) -> "Shards":
+        """A copy with every block's rows and targets in ``dtype`` (float32 for the engine's
+        single-precision path): the same layout, half the bytes a pass streams."""
+        out = copy.copy(self)
+        out.blocks = [b.astype(dtype) for b in self.blocks]
+        return out
 
     def run(self, work: Callable[[Block], None]) -> None:
         """Call ``work(block)`` for every block, in parallel when there are several."""

@@ -52,6 +52,7 @@ class StackedProblem(Problem):
     model's ``_pass`` on each slice, adds the regulariser."""
 
     _stack_width: int
+    float32_ok = False  # the models keep arrays of their own (one-hot targets, layer shapes) in float64
 
     def local_grads(
         self, X: np.ndarray, *, with_loss: bool = False

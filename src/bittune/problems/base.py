@@ -2,18 +2,22 @@
 
 from __future__ import annotations
 
+import copy
 from abc import ABC, abstractmethod
 
 import numpy as np
 
 from ._shards import Block, Shards
 
-__all__ = ["Problem", "check_iterates"]
+__all__ = ["Problem", "check_iterates", "PRECISIONS"]
+
+#: The engine's floating types by job/config name (``engine.precision``).
+PRECISIONS = {"float64": np.float64, "float32": np.float32}
 
 
-def check_iterates(X, *, n_workers: int, dim: int) -> np.ndarray:
-    """X as float64 of shape (B, d) or (B, n, d), the two forms every oracle takes."""
-    X = np.asarray(X, dtype=np.float64)
+def check_iterates(X, *, n_workers: int, dim: int, dtype=np.float64) -> np.ndarray:
+    """X as ``dtype`` (float64 by default) of shape (B, d) or (B, n, d), the two forms every oracle takes."""
+    X = np.asarray(X, dtype=dtype)
     n, d = n_workers, dim
     if not (X.ndim == 2 or (X.ndim == 3 and X.shape[1] == n)) or X.shape[-1] != d:
         raise ValueError(f"X must have shape (B, {d}) or (B, {n}, {d}), got {X.shape}")
@@ -34,6 +38,9 @@ class Problem(ABC):
     has_samples: bool = True
     #: True when the problem can be pickled into a worker process (bittune.parallel).
     portable: bool = True
+    #: True when :meth:`in_precision` can give a float32 twin (rows and shift cast; models that
+    #: keep other data arrays of their own set False).
+    float32_ok: bool = True
     #: Sign folded into the per-worker scale 1/m_i of the backward pass, so that
     #: ``_residual_weights`` can skip a negation pass.
     _weight_sign: float = 1.0
@@ -44,6 +51,38 @@ class Problem(ABC):
         #: Optional constant (n, d) subtracted from every gradient (a data term
         #: that does not depend on x, precomputed once).
         self._grad_shift: np.ndarray | None = None
+        self._twins: dict = {}
+
+    @property
+    def dtype(self) -> np.dtype:
+        """Floating type of the oracle's arithmetic and results (that of the stored rows)."""
+        return self.shards.dtype
+
+    def in_precision(self, precision: str) -> "Problem":
+        """This problem with its data in ``precision`` ("float64" or "float32"); built once, cached.
+
+        The twin shares nothing mutable with this problem; the probe and the gradient check
+        always use the float64 original (docs/design.md, "The engine").
+        """
+        dtype = np.dtype(PRECISIONS[precision])
+        if dtype == self.dtype:
+            return self
+        if not self.float32_ok:
+            raise ValueError(f"model {self.name!r}: precision {precision} is not available for this model")
+        twin = self._twins.get(precision)
+        if twin is None:
+            twin = copy.copy(self)
+            twin._twins = {}
+            twin.shards = self.shards.astype(dtype)
+            if self._grad_shift is not None:
+                twin._grad_shift = self._grad_shift.astype(dtype)
+            self._twins[precision] = twin
+        return twin
+
+    def __getstate__(self) -> dict:
+        state = dict(self.__dict__)
+        state["_twins"] = {}  # rebuilt on demand in the receiving process
+        return state
 
     @property
     def n_workers(self) -> int:
@@ -64,8 +103,8 @@ class Problem(ABC):
         """Gradients (B, n, d) of every f_i, and their values (B, n) if asked."""
         X = self._check(X)
         B, n, d = X.shape[0], self.n_workers, self.dim
-        grads = np.empty((B, n, d))
-        loss = np.empty((B, n)) if with_loss else None
+        grads = np.empty((B, n, d), dtype=X.dtype)
+        loss = np.empty((B, n), dtype=X.dtype) if with_loss else None
 
         def work(blk: Block) -> None:
             z = blk.forward(X)
@@ -89,7 +128,7 @@ class Problem(ABC):
         """
         X = self._check(X)
         W = self._check_weights(X, weights)
-        grads = np.empty((X.shape[0], self.n_workers, self.dim))
+        grads = np.empty((X.shape[0], self.n_workers, self.dim), dtype=X.dtype)
 
         def work(blk: Block) -> None:
             R = self._row_residuals(blk.forward(X), blk)
@@ -122,7 +161,7 @@ class Problem(ABC):
     def local_losses(self, X: np.ndarray) -> np.ndarray:
         """Values (B, n) of every f_i."""
         X = self._check(X)
-        loss = np.empty((X.shape[0], self.n_workers))
+        loss = np.empty((X.shape[0], self.n_workers), dtype=X.dtype)
 
         def work(blk: Block) -> None:
             loss[:, blk.lo : blk.hi] = self._data_loss(blk.forward(X), blk)
@@ -131,7 +170,7 @@ class Problem(ABC):
         return loss + self._reg_value(X if X.ndim == 3 else X[:, None, :])
 
     def _check(self, X) -> np.ndarray:
-        return check_iterates(X, n_workers=self.n_workers, dim=self.dim)
+        return check_iterates(X, n_workers=self.n_workers, dim=self.dim, dtype=self.dtype)
 
     def full_grad(self, x: np.ndarray) -> np.ndarray:
         """Gradient of f at one point, shape (d,)."""
