@@ -22,7 +22,7 @@ def _least_squares(seed=0, n=4, m=40, d=6, reg=0.05):
 
 
 def _closed_forms(H: np.ndarray) -> dict:
-    """THEORY.md 3.1's constants of a quadratic with Hessians H (n, d, d) by numpy.linalg.eigvalsh:
+    """docs/theory.md §3.1's constants of a quadratic with Hessians H (n, d, d) by numpy.linalg.eigvalsh:
     L = lambda_max(Hbar), L_+ = sqrt(lambda_max(mean H_i^2)), L_pm = sqrt(lambda_max(mean H_i^2 - Hbar^2)),
     L_max = max_i lambda_max(H_i)."""
     Hbar = H.mean(axis=0)
