@@ -484,6 +484,9 @@ def mask_url(url: str) -> str:
 def open_storage(url: str):
     """An Optuna storage: a database URL (RDBStorage with heartbeats and a small pool), else a
     journal file path. An unreachable database raises :class:`StorageError` (exit 6)."""
+    from .storage import real_url
+
+    url = real_url(url)  # a summary holds the URL redacted; this process may know the real one
     if "://" not in url:
         from optuna.storages import JournalStorage
         from optuna.storages.journal import JournalFileBackend

@@ -29,7 +29,7 @@ from urllib.parse import parse_qsl, unquote, urlsplit
 
 from .errors import BusyError, InputError
 
-__all__ = ["redact", "secrets_of", "remember", "check_url", "is_database", "journal_path", "RunLock",
+__all__ = ["redact", "secrets_of", "remember", "real_url", "check_url", "is_database", "journal_path", "RunLock",
            "clear_stale_journal_lock", "install_log_filter", "JOURNAL_LOCK_GRACE"]
 
 #: Query parameters whose values are secrets (common practice, no source: libpq's and
@@ -41,6 +41,7 @@ MASK = "***"
 JOURNAL_LOCK_GRACE = 30
 
 _KNOWN: set[str] = set()  # every secret seen in this process, longest first when replacing
+_REAL: dict[str, str] = {}  # redacted URL -> the URL itself, for URLs seen in this process
 
 
 def is_database(url: str) -> bool:
@@ -76,6 +77,12 @@ def secrets_of(url: str) -> set[str]:
 def remember(url: str) -> None:
     """Hide this URL's secrets from every later ``redact`` in this process."""
     _KNOWN.update(secrets_of(url))
+    _REAL[redact(url, url)] = str(url)
+
+
+def real_url(url: str) -> str:
+    """The URL a redacted URL (as written in a summary) stood for, if this process saw it."""
+    return _REAL.get(str(url), str(url))
 
 
 def redact(text, url: str | None = None) -> str:

@@ -355,7 +355,7 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
     gc = report.gradient_check
     doc = {
         "bittune_summary": 1,
-        "job": str(job.path), "config": str(Path(output).absolute()), "study": study, "storage": storage,
+        "job": str(job.path), "config": str(Path(output).absolute()), "study": study, "storage": mask_url(storage),
         "problem": ws.summary(), "target": ws.target_doc(),
         "target_grad_norm_sq": float(ws.target) if ws.reference is None else None,
         "constants": constants.to_dict(),

@@ -129,6 +129,13 @@ def open_job(job: Job, *, reference: dict | None = None) -> Workspace:
                          f"index far too large?", source=str(job.path)) from None
     grads, losses = problem.local_grads(x0[None, :], with_loss=True)
     if not (np.all(np.isfinite(grads)) and np.all(np.isfinite(losses))):
+        if job.model == "plugin":  # the user's code is the culprit, not the start settings
+            bad = [i for i in range(grads.shape[1])
+                   if not (np.all(np.isfinite(grads[0, i])) and np.all(np.isfinite(losses[0, i])))]
+            what = "gradient" if not np.all(np.isfinite(grads)) else "loss"
+            raise InputError(f"plugin: {job.model_options.get('plugin')}: the {what} returned at the start "
+                             f"point is not finite (worker(s) {bad[:5]}{' ...' if len(bad) > 5 else ''}); "
+                             f"check that function's loss_and_grad", source=str(job.path))
         raise InputError(f"start: the model's loss or gradient at the start point is not finite "
                          f"(start.scale, start.file or regularization too large?)", source=str(job.path))
     if job.target.kind == "loss_gap":
