@@ -195,6 +195,11 @@ def test_query_password_never_shows(pg_port, tmp_path):
     assert ok.returncode == 0, ok.stderr
     assert "***" in ok.stdout  # the storage is shown, its password masked
     _no_secret(ok.stdout + ok.stderr + _files_text(tmp_path / "runs"))
+    # The summary keeps the URL without its password: the report is rebuilt with libpq's PGPASSWORD.
+    rep = subprocess.run(BITTUNE + ["report", "runs/c.run"], cwd=tmp_path, capture_output=True, text=True,
+                         timeout=300, env={**os.environ, "PGPASSWORD": SECRET})
+    assert rep.returncode == 0, rep.stderr
+    _no_secret(rep.stdout + rep.stderr + _files_text(tmp_path / "runs"))
 
 
 @pytest.mark.slow

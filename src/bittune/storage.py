@@ -29,7 +29,7 @@ from urllib.parse import parse_qsl, unquote, urlsplit
 
 from .errors import BusyError, InputError
 
-__all__ = ["redact", "secrets_of", "remember", "real_url", "check_url", "is_database", "journal_path", "RunLock",
+__all__ = ["redact", "secrets_of", "remember", "real_url", "without_secrets", "check_url", "is_database", "journal_path", "RunLock",
            "clear_stale_journal_lock", "install_log_filter", "JOURNAL_LOCK_GRACE"]
 
 #: Query parameters whose values are secrets (common practice, no source: libpq's and
@@ -78,6 +78,28 @@ def remember(url: str) -> None:
     """Hide this URL's secrets from every later ``redact`` in this process."""
     _KNOWN.update(secrets_of(url))
     _REAL[redact(url, url)] = str(url)
+    _REAL[without_secrets(url)] = str(url)
+
+
+def without_secrets(url: str) -> str:
+    """The URL with its passwords left out (not masked): what a file may keep. libpq then takes
+    the password from its usual places (PGPASSWORD, ~/.pgpass) when the URL is opened again."""
+    url = str(url)
+    if not is_database(url) or not secrets_of(url):
+        return url
+    from urllib.parse import urlsplit, urlunsplit
+
+    try:
+        parts = urlsplit(url)
+    except ValueError:
+        return redact(url, url)
+    netloc = parts.netloc
+    if "@" in netloc:
+        cred, host = netloc.rsplit("@", 1)
+        netloc = cred.split(":", 1)[0] + "@" + host
+    query = "&".join(q for q in parts.query.split("&")
+                     if q and unquote(q.split("=", 1)[0]).lower() not in SECRET_KEYS)
+    return redact(urlunsplit((parts.scheme, netloc, parts.path, query, parts.fragment)), url)
 
 
 def real_url(url: str) -> str:

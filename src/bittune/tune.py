@@ -328,6 +328,7 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
     import json
 
     from ._yaml import atomic_write_text
+    from .storage import without_secrets
 
     ws, job, constants, report, space = prep.ws, prep.job, prep.constants, prep.report, prep.space
 
@@ -355,7 +356,7 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
     gc = report.gradient_check
     doc = {
         "bittune_summary": 1,
-        "job": str(job.path), "config": str(Path(output).absolute()), "study": study, "storage": mask_url(storage),
+        "job": str(job.path), "config": str(Path(output).absolute()), "study": study, "storage": without_secrets(storage),
         "problem": ws.summary(), "target": ws.target_doc(),
         "target_grad_norm_sq": float(ws.target) if ws.reference is None else None,
         "constants": constants.to_dict(),
