@@ -7,11 +7,13 @@ from __future__ import annotations
 
 import hashlib
 import os
+import shutil
 import subprocess
 import sys
 from pathlib import Path
 
 import pytest
+import yaml
 
 from bittune.cli import main
 from bittune.errors import EXIT
@@ -147,19 +149,37 @@ def test_read_only_file_system_is_refused_up_front(job, tmpfs, tmp_path, capsys)
 def test_full_disk_names_the_path_and_keeps_the_previous_file(job, tmpfs, capsys):
     out = tmpfs / "constants.yaml"
     out.write_text("bittune_constants: 1\nkept: yes\n")
-    try:  # fill the file system to the last block
-        with open(tmpfs / "filler", "wb") as fh:
-            while True:
-                fh.write(b"\0" * 4096)
-                fh.flush()
-    except OSError:
-        pass
+    _fill(tmpfs)
     before = out.read_bytes()
     code, text = _run(["probe", job, "-o", out], capsys)
     assert code == EXIT["disk"] and code != EXIT["internal"], text
     assert str(out) in text and "No space left on device" in text, text
     assert out.read_bytes() == before
     assert sorted(p.name for p in tmpfs.iterdir()) == ["constants.yaml", "filler"]  # no temp file left
+
+
+def _fill(folder: Path) -> None:
+    try:  # fill the file system to the last block
+        with open(folder / "filler", "wb") as fh:
+            while True:
+                fh.write(b"\0" * 4096)
+                fh.flush()
+    except OSError:
+        pass
+
+
+def test_full_run_folder_names_the_file(job, tmpfs, tmp_path, capsys):
+    out = tmp_path / "c.yaml"
+    code, text = _run(["tune", job, "-o", out, "--run-dir", tmpfs / "run"], capsys)  # 64 KiB: the report fills it
+    assert code == EXIT["disk"], text
+    assert f"{tmpfs / 'run' / 'report'}: cannot write the report (No space left" in text, text
+    assert yaml.safe_load(out.read_text())["expected"]  # written before the report, and complete
+    shutil.rmtree(tmpfs / "run")
+    _fill(tmpfs)  # now full before the first journal record
+    code, text = _run(["tune", job, "-o", tmp_path / "d.yaml", "--run-dir", tmpfs / "run"], capsys)
+    assert code == EXIT["disk"], text
+    assert f"{tmpfs / 'run'}/" in text and ": cannot write the " in text and "(No space left" in text, text
+    assert not (tmp_path / "d.yaml").exists()
 
 
 # ------------------------------------------------------------------ item 4: storage checked first

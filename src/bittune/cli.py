@@ -432,6 +432,8 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT["interrupted"]
     except OSError as exc:
         if exc.errno in NO_SPACE:  # full disk, quota, read-only: name the file, not a bug
+            if args.debug:
+                print(redact(traceback.format_exc()), file=sys.stderr, end="")
             print(redact(f"bittune: error: {exc.filename or 'a file'}: cannot write ({exc.strerror})"),
                   file=sys.stderr)
             return EXIT["disk"]

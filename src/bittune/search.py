@@ -27,6 +27,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import optuna
+from optuna.storages.journal import JournalFileBackend
 from optuna.trial import TrialState
 
 from .compressors import COMPRESSORS, make_compressor
@@ -481,6 +482,22 @@ def mask_url(url: str) -> str:
     return redact(url, url)
 
 
+class _JournalBackend(JournalFileBackend):
+    """Optuna's journal file; a full disk or read-only file system names the journal (exit 7)."""
+
+    def append_logs(self, logs):
+        try:
+            super().append_logs(logs)
+        except OSError as exc:
+            from ._yaml import NO_SPACE
+            from .errors import WriteError
+
+            if exc.errno in NO_SPACE:
+                raise WriteError(f"{self._file_path}: cannot write the study journal "
+                                 f"({os.strerror(exc.errno)})") from None
+            raise
+
+
 def open_storage(url: str):
     """An Optuna storage: a database URL (RDBStorage with heartbeats and a small pool), else a
     journal file path. An unreachable database raises :class:`StorageError` (exit 6)."""
@@ -489,8 +506,6 @@ def open_storage(url: str):
     url = real_url(url)  # a summary holds the URL redacted; this process may know the real one
     if "://" not in url:
         from optuna.storages import JournalStorage
-        from optuna.storages.journal import JournalFileBackend
-
         from optuna.storages.journal import JournalFileSymlinkLock
 
         from .storage import JOURNAL_LOCK_GRACE, journal_path
@@ -499,7 +514,7 @@ def open_storage(url: str):
         # left by a killed run dangles, which optuna's lock loop then spins on forever.
         path = str(journal_path(url))
         try:
-            return JournalStorage(JournalFileBackend(path, lock_obj=JournalFileSymlinkLock(
+            return JournalStorage(_JournalBackend(path, lock_obj=JournalFileSymlinkLock(
                 path, grace_period=JOURNAL_LOCK_GRACE)))
         except OSError as exc:
             from ._yaml import NO_SPACE

@@ -231,8 +231,19 @@ class RunLock:
             os.close(fd)
             raise BusyError(f"run folder {self.path.parent} is in use by another bittune process "
                             f"(pid {holder}); retry when it has finished, or give another --run-dir") from None
-        os.ftruncate(fd, 0)
-        os.pwrite(fd, f"{os.getpid()}\n".encode("ascii"), 0)
+        try:
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, f"{os.getpid()}\n".encode("ascii"), 0)
+        except OSError as exc:
+            os.close(fd)
+            from ._yaml import NO_SPACE
+
+            if exc.errno in NO_SPACE:
+                from .errors import WriteError
+
+                raise WriteError(f"{self.path}: cannot write the run-folder lock ({os.strerror(exc.errno)})") \
+                    from None
+            raise
         self.fd = fd
         return self
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import math
+import os
 import sys
 import threading
 import time
@@ -227,7 +228,16 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
         write_config(output, config)
         write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
                       storage=storage_url)
-        paths = write_report(run_dir, out_dir=report_dir)
+        try:
+            paths = write_report(run_dir, out_dir=report_dir)
+        except OSError as exc:
+            from ._yaml import NO_SPACE
+            from .errors import WriteError
+
+            if exc.errno not in NO_SPACE:
+                raise
+            raise WriteError(f"{Path(report_dir) if report_dir else run_dir / 'report'}: cannot write the report "
+                             f"({os.strerror(exc.errno)}); the config {output} is written and complete") from None
     log.note(f"report: {paths['html']}")
     code = EXIT["ok"] if selection.all_reached else EXIT["no_candidate"]
     log.note(f"wrote {output}" + ("" if selection.all_reached else " (best effort: no candidate reached the "
