@@ -75,6 +75,11 @@ def test_output_onto_an_input_or_a_foreign_file_is_refused(job, tmp_path, capsys
     link.symlink_to(job)  # a real symlink to the job file
     foreign = tmp_path / "notes.yaml"
     foreign.write_text("shopping: [apples]\n")
+    prev = tmp_path / "prev.yaml"
+    prev.write_text("bittune_config: 1\nmethod: gd\ncompressor: {name: identity}\nstep_size: 0.01\n")
+    (tmp_path / "model.py").write_text("def make(X, y):\n    raise RuntimeError('never imported')\n")
+    plugin_job = tmp_path / "plugin_job.yaml"
+    plugin_job.write_text(JOB.replace("model: logistic_nonconvex", "model: plugin\nplugin: model.py:make"))
     before = _digest(tmp_path)
     cases = [
         (["tune", job, "-o", job], "is also an input"),
@@ -83,6 +88,9 @@ def test_output_onto_an_input_or_a_foreign_file_is_refused(job, tmp_path, capsys
         (["probe", job, "-o", job], "is also an input"),
         (["probe", job, "-o", link], "is also an input"),
         (["tune", job, "-o", foreign], "is not a bittune config file"),
+        (["retune", job, "-o", job, "--previous", prev], "is also an input"),
+        (["retune", job, "-o", tmp_path / "st.svm", "--previous", prev], "is also an input"),
+        (["tune", plugin_job, "-o", tmp_path / "model.py", "--allow-code"], "is also an input"),
         (["probe", job, "-o", foreign], "is not a bittune constants file"),
     ]
     for argv, message in cases:
