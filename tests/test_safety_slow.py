@@ -218,3 +218,4 @@ def test_wrong_password_and_unreachable_port_never_show_the_password(pg_port, tm
         assert "storage unreachable" in r.stderr and "***" in r.stderr, r.stderr
         _no_secret(r.stdout + r.stderr + _files_text(tmp_path / "runs"), wrong, "wr&ng@pw")
         assert not (tmp_path / "runs" / "c.yaml").exists()
+        assert not (tmp_path / "runs" / "c.run").exists()  # no empty run folder left behind

@@ -265,10 +265,19 @@ def hold_run_dir(run_dir: Path, storage_url: str, log):
     lock a killed run left behind is cleared, since no other bittune process can hold it now."""
     from .storage import RunLock, clear_stale_journal_lock
 
+    created = not run_dir.exists()
     run_dir.mkdir(parents=True, exist_ok=True)
-    with RunLock(run_dir):
-        clear_stale_journal_lock(storage_url, log)
-        yield
+    try:
+        with RunLock(run_dir):
+            clear_stale_journal_lock(storage_url, log)
+            yield
+    except BaseException:
+        # e.g. an unreachable database: a run folder this call made and nothing used is not left behind
+        if created and {p.name for p in run_dir.iterdir()} <= {RunLock.NAME}:
+            import shutil
+
+            shutil.rmtree(run_dir, ignore_errors=True)
+        raise
 
 
 def trial_counts(study) -> dict:
