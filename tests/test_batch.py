@@ -218,7 +218,6 @@ search: {methods: [marina, diana], compressors: [rand_k], trials: 24, seeds: 2, 
 
 def test_a_numerical_fault_in_a_batch_fails_only_its_trial(cancer, monkeypatch):
     """The batch that faults is re-run trial by trial: only the trial that faults alone fails."""
-    from dataclasses import replace
 
     import bittune.batch as batch
     from bittune.job import SECTIONS, SearchSpec

@@ -8,7 +8,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-import yaml
 
 from bittune.cli import main
 from bittune.compressors import make_compressor

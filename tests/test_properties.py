@@ -654,11 +654,12 @@ def test_start_point_with_non_finite_gradient_is_an_input_error(folder: Path) ->
 
 
 def test_dimension_beyond_memory_is_an_input_error(folder: Path) -> None:
-    # A typo'd svmlight index makes d = 10^17; building the problem raised MemoryError.
+    # A typo'd svmlight index makes d = 10^17; building the problem raised MemoryError. The
+    # reader now names the line of the offending index.
     (folder / "wide.svm").write_bytes(b"1 1:1\n0 100000000000000000:1\n")
     job = parse_job({"data": "wide.svm", "model": "logistic_nonconvex", "workers": {"count": 2, "split": "iid"},
                      "target": {"grad_norm_sq": 1e-3}, "budget": {"max_rounds": 10}}, base_dir=folder, source="j")
-    with pytest.raises(InputError, match=r"2 samples x 100000000000000000 features over 2 workers do not fit"):
+    with pytest.raises(InputError, match=r"wide.svm:2: feature index 100000000000000000 is too large"):
         open_job(job)
 
 

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import numpy as np
-import pytest
 
 from bittune.probe import STABILITY_KEYS, estimate_constants, half_sample_weights
 from bittune.problems import problem_from_arrays

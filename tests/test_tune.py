@@ -161,7 +161,7 @@ def test_existing_study_with_another_direction_is_refused(frost, tmp_path):
 def test_a_failed_write_leaves_the_previous_config(frost, tmp_path, monkeypatch):
     job = _job(tmp_path, str(frost / "stations.svm"), trials=8)
     out = tmp_path / "c.yaml"
-    out.write_text("previous: config\n")
+    out.write_text("bittune_config: 1  # a previous config of ours (any other file is refused)\n")
 
     def boom(*args, **kwargs):
         raise OSError("disk full")
@@ -169,7 +169,7 @@ def test_a_failed_write_leaves_the_previous_config(frost, tmp_path, monkeypatch)
     monkeypatch.setattr(os, "replace", boom)
     with pytest.raises(OSError):
         tune(job, output=out, progress=Quiet())
-    assert out.read_text() == "previous: config\n"
+    assert out.read_text() == "bittune_config: 1  # a previous config of ours (any other file is refused)\n"
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
 
 

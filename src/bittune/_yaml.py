@@ -8,6 +8,7 @@ error instead of last-one-wins, and ``1e-3`` is a float instead of a string.
 from __future__ import annotations
 
 import difflib
+import errno
 import math
 import numbers
 import os
@@ -171,6 +172,22 @@ def atomic_write_text(path: str | os.PathLike, text: str) -> None:
     previous file is left untouched.
     """
     target = Path(path)
+    try:
+        _atomic_write(target, text)
+    except OSError as exc:
+        if exc.errno in NO_SPACE:
+            from .errors import WriteError
+
+            raise WriteError(f"{target}: cannot write ({os.strerror(exc.errno)}); "
+                             f"the previous file, if any, is unchanged") from None
+        raise
+
+
+#: errno values that mean "this file system cannot take the file": full, over quota, read-only.
+NO_SPACE = (errno.ENOSPC, errno.EDQUOT, errno.EROFS)
+
+
+def _atomic_write(target: Path, text: str) -> None:
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:

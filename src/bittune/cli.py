@@ -15,7 +15,9 @@ import numpy as np
 
 from . import __version__
 from .errors import EXIT, BittuneError, InputError
+from ._yaml import NO_SPACE
 from .job import METHOD_NAMES
+from .storage import redact
 
 __all__ = ["main", "build_parser"]
 
@@ -71,7 +73,12 @@ def _cmd_probe(args: argparse.Namespace) -> int:
     from .probe import probe_workspace
     from .workspace import open_job
 
-    ws = open_job(_load_job(args))
+    job = _load_job(args)
+    if args.output:
+        from .paths import check_output, job_inputs
+
+        check_output(args.output, key="-o", kind="constants", inputs=job_inputs(job))
+    ws = open_job(job)
     constants, report = probe_workspace(ws)
     doc = _probe_doc(ws, constants, report)
     if args.output:
@@ -444,17 +451,29 @@ def main(argv: list[str] | None = None) -> int:
     try:
         return int(args.func(args))
     except BittuneError as exc:
-        print(f"bittune: error: {exc}", file=sys.stderr)
+        print(redact(f"bittune: error: {exc}"), file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print("bittune: interrupted", file=sys.stderr)
         return EXIT["interrupted"]
+    except OSError as exc:
+        if exc.errno in NO_SPACE:  # full disk, quota, read-only: name the file, not a bug
+            if args.debug:
+                print(redact(traceback.format_exc()), file=sys.stderr, end="")
+            print(redact(f"bittune: error: {exc.filename or 'a file'}: cannot write ({exc.strerror})"),
+                  file=sys.stderr)
+            return EXIT["disk"]
+        return _internal(args, exc)
     except Exception as exc:  # a bug: say so, show the traceback when asked
-        if args.debug:
-            traceback.print_exc()
-        print(f"bittune: internal error: {type(exc).__name__}: {exc} (rerun with --debug for the "
-              f"traceback)", file=sys.stderr)
-        return EXIT["internal"]
+        return _internal(args, exc)
+
+
+def _internal(args, exc: Exception) -> int:
+    if args.debug:
+        print(redact(traceback.format_exc()), file=sys.stderr, end="")
+    print(redact(f"bittune: internal error: {type(exc).__name__}: {exc} (rerun with --debug for the "
+                 f"traceback)"), file=sys.stderr)
+    return EXIT["internal"]
 
 
 if __name__ == "__main__":

@@ -164,6 +164,11 @@ def _svm_line_problem(body: bytes) -> str:
     return "cannot parse the line"
 
 
+#: Largest svmlight feature index accepted without data.n_features: every iterate, gradient and
+#: compressed message is a dense vector of this length (our choice, no source).
+MAX_FEATURES = 10 ** 8
+
+
 def _read_svmlight(raw: bytes, src: str, n_features: int | None) -> Dataset:
     """svmlight/libsvm: ``label idx:val ...``, 1-based increasing indices, ``#`` comments.
 
@@ -199,6 +204,9 @@ def _read_svmlight(raw: bytes, src: str, n_features: int | None) -> Dataset:
          lambda k: f"feature indices must be strictly increasing, got {idx[k - 1]} then {idx[k]}"),
         (idx > n_features if n_features is not None else np.zeros(idx.shape, bool),
          lambda k: f"feature index {idx[k]} exceeds data.n_features = {n_features}"),
+        (idx > MAX_FEATURES if n_features is None else np.zeros(idx.shape, bool),
+         lambda k: f"feature index {idx[k]} is too large: at most {MAX_FEATURES:,} features (one dense "
+                   f"float64 iterate of that size is {8 * MAX_FEATURES / 1e9:g} GB); a typo?"),
         (~np.isfinite(val), lambda k: f"NaN or infinite value for feature {idx[k]}"),
     ]
     for bad, msg in reversed(checks):  # reversed: per line, the first check at its first token wins

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["BittuneError", "InputError", "GradientCheckError", "StorageError", "EXIT"]
+__all__ = ["BittuneError", "InputError", "GradientCheckError", "StorageError", "WriteError", "BusyError", "EXIT"]
 
 #: Exit codes of every command (docs/design.md, "Commands and exit codes").
 EXIT = {
@@ -13,6 +13,8 @@ EXIT = {
     "no_candidate": 4,
     "kept_previous": 5,
     "storage": 6,
+    "disk": 7,
+    "busy": 8,
     "interrupted": 130,
 }
 
@@ -58,3 +60,18 @@ class StorageError(BittuneError):
     """The study storage cannot be reached (retryable: exit 6)."""
 
     exit_code = EXIT["storage"]
+
+
+class WriteError(BittuneError):
+    """A file could not be written: disk full, quota exceeded or read-only file system (exit 7).
+
+    The message names the path; the previous file, if any, is left as it was.
+    """
+
+    exit_code = EXIT["disk"]
+
+
+class BusyError(BittuneError):
+    """Another bittune process holds the run folder (retry later: exit 8)."""
+
+    exit_code = EXIT["busy"]

@@ -29,6 +29,10 @@ __all__ = [
     "load_job", "parse_job", "data_digest", "MODELS", "SPLITS", "DATA_FORMATS", "SECTIONS",
 ]
 
+#: Most parallel processes a tune may start (search.jobs, --jobs): a bound on memory and file
+#: handles (our choice, no source; far above the cores of one machine).
+MAX_JOBS = 64
+
 MODELS = ("logistic_nonconvex", "least_squares", "softmax", "mlp", "plugin")
 METHOD_NAMES = ("gd", "dcgd", "diana", "marina", "pp_marina", "vr_marina", "ef21")
 COMPRESSOR_NAMES = ("identity", "rand_k", "top_k", "dither", "natural", "natural_dither", "perm_k")
@@ -236,7 +240,7 @@ SECTIONS: dict[str, dict[str, Param]] = {
         "compressors": Param("choices", options=COMPRESSOR_NAMES,
                              default=["rand_k", "top_k", "dither", "natural"]),
         "trials": Param("int", low=1, default=60),
-        "jobs": Param("int", low=1, default=1),
+        "jobs": Param("int", low=1, high=MAX_JOBS, default=1),  # see MAX_JOBS
         "seeds": Param("int", low=1, default=3),
         "seed": Param("int", low=0, default=0),
         "step_range": Param("range", low=0, closed="right", default=(0.5, 4096.0)),

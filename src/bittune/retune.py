@@ -31,7 +31,8 @@ from .errors import EXIT, InputError
 from .search import SYNCED, Candidate, open_storage
 from .select import Evaluation, evaluate, select
 from .progress import Progress
-from .tune import _config_doc, _plain, objective_unit, prepare, respace, run_search, trial_counts, write_summary
+from .tune import (_config_doc, _plain, check_paths, hold_run_dir, objective_unit, prepare, respace, run_search,
+                   trial_counts, write_summary)
 
 __all__ = ["RetuneResult", "retune", "drift_table", "decide", "HISTORY_FIELDS", "history_rows"]
 
@@ -191,11 +192,29 @@ def _narrowed(spec, cand: Candidate, space) -> dict:
     return out
 
 
-def retune(job_path, *, previous, output, trials: int | None = None, jobs: int | None = None,
+def retune(job_path, *, previous, output, **kwargs) -> RetuneResult:
+    """Retune on tonight's data against the config in use; see the module docstring.
+
+    Every output path and the storage URL are checked first (exit 2); the run folder is held
+    locked (exit 8 while another process holds it) from the search to the last file written."""
+    from .job import load_job
+    from .paths import check_folder
+
+    previous, output = Path(previous), Path(output)
+    run_dir = Path(kwargs["run_dir"]) if kwargs.get("run_dir") else output.parent / f"{output.stem}.run"
+    storage_url = kwargs.get("storage") or str(run_dir / "study.journal")
+    check_paths(load_job(job_path), output=output, run_dir=run_dir, report_dir=kwargs.get("report_dir"),
+                storage_url=storage_url, previous=previous)
+    if kwargs.get("history") is not None:
+        check_folder(kwargs["history"], key="--history")
+    kwargs["lock"] = lambda log: hold_run_dir(run_dir, storage_url, log)
+    return _retune(job_path, previous=previous, output=output, **kwargs)
+
+
+def _retune(job_path, *, previous, output, lock, trials: int | None = None, jobs: int | None = None,
            seed: int | None = None, run_dir=None, storage: str | None = None, history=None,
            margin: float = MARGIN, level: float = LEVEL, drift_threshold: float = DRIFT_THRESHOLD,
            report_dir=None, allow_code: bool = False, progress=None) -> RetuneResult:
-    """Retune on tonight's data against the config in use; see the module docstring."""
     previous, output = Path(previous), Path(output)
     prev = load_config(previous)
     if "constants" not in prev.extra:
@@ -227,55 +246,56 @@ def retune(job_path, *, previous, output, trials: int | None = None, jobs: int |
     prep = respace(first, overrides)
     log.total, log.unit = prep.job.search.trials, objective_unit(prep.job)
     warm = _warm_params(prep.space, warm_cands)
-    study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, warm=warm)
-    log.note("select: validating tonight's best and the previous config on the same fresh seeds")
-    selection = select(ws, prep.space, study, prep.network, log=log)
-    if new_problem:
-        decision, reason, p = ("replaced", "new problem (dimension or worker count changed)", math.nan)
-        old_eval = None
-        if not selection.all_reached:
-            decision, reason = "failed", "new problem and no candidate reaches the target on every fresh seed"
-    else:
-        old_eval = evaluate(ws, [prev_cand], selection.seeds, prep.network)[0]
-        decision, reason, p = decide(selection.winner, old_eval, margin=margin, level=level)
-        log.note(f"select: on the {len(selection.seeds)} fresh seeds tonight's best needs "
-                 f"{selection.winner.mean_cost:,.4g} {objective_unit(prep.job)} (the search's best above is on "
-                 f"the search seeds), the previous config {old_eval.mean_cost:,.4g}")
-    section = {
-        "decision": decision, "reason": reason, "p_value": None if math.isnan(p) else p,
-        "margin": margin, "level": level, "drift_size": size, "new_problem": new_problem,
-        "drift": drift, "trials": trial_counts(study),
-        "new": selection.winner.summary(), "previous": None if old_eval is None else old_eval.summary(),
-        "previous_config": str(previous.absolute()), "time_utc": _now(),
-    }
-    if ws.reference is not None:  # a loss gap: f_ref is found again on tonight's data (the previous is shown)
-        old = prev.extra["constants"].get("f_ref") if isinstance(prev.extra["constants"], dict) else None
-        section["f_ref"] = {"previous": old.get("value") if isinstance(old, dict) else None,
-                            "current": ws.loss_ref, "note": ws.reference["note"]}
-    if decision == "replaced":
-        doc = _config_doc(prep, selection, study.study_name, storage_url, output)
-    else:
-        doc = config_to_dict(prev)
-        doc.pop("retune", None)
-    doc["retune"] = _plain(section)
-    code = {"replaced": EXIT["ok"], "kept": EXIT["kept_previous"], "failed": EXIT["no_candidate"]}[decision]
-    same_file = output.absolute() == previous.absolute()
-    written = None
-    if not (decision != "replaced" and same_file):
-        write_config(output, doc)
-        written = output
-    write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
-                  storage=storage_url, extra={"retune": _plain(section)})
-    paths = write_report(run_dir, out_dir=report_dir, drift=_plain(drift), extra_sections=[{
-        "title": "Retune decision", "text": f"{decision}: {reason}",
-        "rows": [dict(configuration=k, **{f: (v or {}).get(f) for f in ("method", "compressor", "step_size",
-                                                                          "reached", "mean_bits_per_worker")})
-                 for k, v in (("tonight", section["new"]), ("previous", section["previous"]))]}])
-    log.note(f"report: {paths['html']}")
-    if history is not None:
-        _record_history(Path(history), doc, section)
-    log.note(f"decision: {decision} ({reason})" + (f"; wrote {written}" if written else "; nothing written"))
-    return RetuneResult(code, decision, doc, drift, written)
+    with lock(log):
+        study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, warm=warm)
+        log.note("select: validating tonight's best and the previous config on the same fresh seeds")
+        selection = select(ws, prep.space, study, prep.network, log=log)
+        if new_problem:
+            decision, reason, p = ("replaced", "new problem (dimension or worker count changed)", math.nan)
+            old_eval = None
+            if not selection.all_reached:
+                decision, reason = "failed", "new problem and no candidate reaches the target on every fresh seed"
+        else:
+            old_eval = evaluate(ws, [prev_cand], selection.seeds, prep.network)[0]
+            decision, reason, p = decide(selection.winner, old_eval, margin=margin, level=level)
+            log.note(f"select: on the {len(selection.seeds)} fresh seeds tonight's best needs "
+                     f"{selection.winner.mean_cost:,.4g} {objective_unit(prep.job)} (the search's best above is "
+                     f"on the search seeds), the previous config {old_eval.mean_cost:,.4g}")
+        section = {
+            "decision": decision, "reason": reason, "p_value": None if math.isnan(p) else p,
+            "margin": margin, "level": level, "drift_size": size, "new_problem": new_problem,
+            "drift": drift, "trials": trial_counts(study),
+            "new": selection.winner.summary(), "previous": None if old_eval is None else old_eval.summary(),
+            "previous_config": str(previous.absolute()), "time_utc": _now(),
+        }
+        if ws.reference is not None:  # a loss gap: f_ref is found again on tonight's data (the previous is shown)
+            old = prev.extra["constants"].get("f_ref") if isinstance(prev.extra["constants"], dict) else None
+            section["f_ref"] = {"previous": old.get("value") if isinstance(old, dict) else None,
+                                "current": ws.loss_ref, "note": ws.reference["note"]}
+        if decision == "replaced":
+            doc = _config_doc(prep, selection, study.study_name, storage_url, output)
+        else:
+            doc = config_to_dict(prev)
+            doc.pop("retune", None)
+        doc["retune"] = _plain(section)
+        code = {"replaced": EXIT["ok"], "kept": EXIT["kept_previous"], "failed": EXIT["no_candidate"]}[decision]
+        same_file = output.absolute() == previous.absolute()
+        written = None
+        if not (decision != "replaced" and same_file):
+            write_config(output, doc)
+            written = output
+        write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
+                      storage=storage_url, extra={"retune": _plain(section)})
+        paths = write_report(run_dir, out_dir=report_dir, drift=_plain(drift), extra_sections=[{
+            "title": "Retune decision", "text": f"{decision}: {reason}",
+            "rows": [dict(configuration=k, **{f: (v or {}).get(f) for f in ("method", "compressor", "step_size",
+                                                                              "reached", "mean_bits_per_worker")})
+                     for k, v in (("tonight", section["new"]), ("previous", section["previous"]))]}])
+        log.note(f"report: {paths['html']}")
+        if history is not None:
+            _record_history(Path(history), doc, section)
+        log.note(f"decision: {decision} ({reason})" + (f"; wrote {written}" if written else "; nothing written"))
+        return RetuneResult(code, decision, doc, drift, written)
 
 
 def _now() -> str:

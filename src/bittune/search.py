@@ -27,6 +27,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import optuna
+from optuna.storages.journal import JournalFileBackend
 from optuna.trial import TrialState
 
 from .compressors import COMPRESSORS, make_compressor
@@ -505,30 +506,63 @@ def _heartbeat() -> tuple[int, int]:
 
 
 def mask_url(url: str) -> str:
-    """The URL with its password hidden."""
-    if "://" in url and "@" in url.split("://", 1)[1]:
-        head, tail = url.split("://", 1)
-        cred, host = tail.rsplit("@", 1)
-        if ":" in cred:
-            cred = cred.split(":", 1)[0] + ":***"
-        return f"{head}://{cred}@{host}"
-    return url
+    """The URL with its passwords hidden (``storage.redact``)."""
+    from .storage import redact
+
+    return redact(url, url)
+
+
+class _JournalBackend(JournalFileBackend):
+    """Optuna's journal file; a full disk or read-only file system names the journal (exit 7)."""
+
+    def append_logs(self, logs):
+        try:
+            super().append_logs(logs)
+        except OSError as exc:
+            from ._yaml import NO_SPACE
+            from .errors import WriteError
+
+            if exc.errno in NO_SPACE:
+                raise WriteError(f"{self._file_path}: cannot write the study journal "
+                                 f"({os.strerror(exc.errno)})") from None
+            raise
 
 
 def open_storage(url: str):
     """An Optuna storage: a database URL (RDBStorage with heartbeats and a small pool), else a
     journal file path. An unreachable database raises :class:`StorageError` (exit 6)."""
+    from .storage import real_url
+
+    url = real_url(url)  # a summary holds the URL redacted; this process may know the real one
     if "://" not in url:
         from optuna.storages import JournalStorage
-        from optuna.storages.journal import JournalFileBackend
+        from optuna.storages.journal import JournalFileSymlinkLock
 
-        return JournalStorage(JournalFileBackend(str(url)))
+        from .storage import JOURNAL_LOCK_GRACE, journal_path
+
+        # An absolute path: optuna's lock is a symlink to this path, and a relative target
+        # left by a killed run dangles, which optuna's lock loop then spins on forever.
+        path = str(journal_path(url))
+        try:
+            return JournalStorage(_JournalBackend(path, lock_obj=JournalFileSymlinkLock(
+                path, grace_period=JOURNAL_LOCK_GRACE)))
+        except OSError as exc:
+            from ._yaml import NO_SPACE
+            from .errors import InputError, WriteError
+
+            if exc.errno in NO_SPACE:
+                raise WriteError(f"{path}: cannot write ({os.strerror(exc.errno)})") from None
+            raise InputError(f"--storage: cannot open the journal file {path} ({os.strerror(exc.errno or 0)})") \
+                from None
     import warnings
 
     from optuna.storages import RDBStorage, RetryHeartbeatStaleTrialCallback
 
     from .errors import StorageError
+    from .storage import install_log_filter, redact, remember
 
+    remember(url)
+    install_log_filter()
     engine = {"pool_size": 1, "max_overflow": 2, "pool_pre_ping": True}
     if url.startswith("postgresql"):
         engine["connect_args"] = {"connect_timeout": CONNECT_TIMEOUT}
@@ -547,8 +581,7 @@ def open_storage(url: str):
                            f"install bittune[postgres]") from None
     except Exception as exc:  # SQLAlchemy's OperationalError and friends: report, retry later
         reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise StorageError(f"storage unreachable: {mask_url(url)} ({type(exc).__name__}: "
-                           f"{reason.replace(url, mask_url(url))})") from None
+        raise StorageError(redact(f"storage unreachable: {url} ({type(exc).__name__}: {reason})", url)) from None
 
 
 def open_study(storage, name: str, *, sampler_seed: int, pruner: str) -> optuna.Study:

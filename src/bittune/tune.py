@@ -10,8 +10,10 @@ restarted with the same run directory resumes from that storage.
 from __future__ import annotations
 
 import datetime as _dt
+import os
 import threading
 import time
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -72,11 +74,18 @@ def apply_overrides(job: Job, overrides: dict) -> Job:
     """Command-line and retune changes to the job's search settings."""
     from dataclasses import replace
 
+    from .job import MAX_JOBS
+
     for key in ("trials", "jobs", "seed"):
         value = overrides.get(key)
         if value is not None and value < (0 if key == "seed" else 1):
             raise InputError(f"--{key}: must be an integer >= {0 if key == 'seed' else 1}, got {value}")
-    return replace(job, search=replace(job.search, **overrides)) if overrides else job
+    if overrides.get("jobs") is not None and overrides["jobs"] > MAX_JOBS:
+        raise InputError(f"--jobs: at most {MAX_JOBS} processes, got {overrides['jobs']}")
+    job = replace(job, search=replace(job.search, **overrides)) if overrides else job
+    if job.search.jobs > job.search.trials:  # more processes than trials would only sit idle
+        job = replace(job, search=replace(job.search, jobs=job.search.trials))
+    return job
 
 
 def prepare(job_path, overrides: dict, log, *, allow_code: bool = False) -> Prepared:
@@ -213,21 +222,67 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
     storage_url = storage or str(run_dir / "study.journal")
     job0 = load_job(job_path)
+    check_paths(job0, output=output, run_dir=run_dir, report_dir=report_dir, storage_url=storage_url)
     log = progress or Progress(total=trials or job0.search.trials, unit=objective_unit(job0))
     prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log, allow_code=allow_code)
-    study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only)
-    log.note("select: validating the best candidates on fresh seeds")
-    selection = select(prep.ws, prep.space, study, prep.network, log=log)
-    config = _config_doc(prep, selection, study.study_name, storage_url, output)
-    write_config(output, config)
-    write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
-                  storage=storage_url)
-    paths = write_report(run_dir, out_dir=report_dir)
+    with hold_run_dir(run_dir, storage_url, log):
+        study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only)
+        log.note("select: validating the best candidates on fresh seeds")
+        selection = select(prep.ws, prep.space, study, prep.network, log=log)
+        config = _config_doc(prep, selection, study.study_name, storage_url, output)
+        write_config(output, config)
+        write_summary(run_dir, prep=prep, output=output, selection=selection, study=study.study_name,
+                      storage=storage_url)
+        try:
+            paths = write_report(run_dir, out_dir=report_dir)
+        except OSError as exc:
+            from ._yaml import NO_SPACE
+            from .errors import WriteError
+
+            if exc.errno not in NO_SPACE:
+                raise
+            raise WriteError(f"{Path(report_dir) if report_dir else run_dir / 'report'}: cannot write the report "
+                             f"({os.strerror(exc.errno)}); the config {output} is written and complete") from None
     log.note(f"report: {paths['html']}")
     code = EXIT["ok"] if selection.all_reached else EXIT["no_candidate"]
     log.note(f"wrote {output}" + ("" if selection.all_reached else " (best effort: no candidate reached the "
                                                                      "target on every fresh seed)"))
     return TuneResult(code, config, selection, study.study_name, storage_url, trial_counts(study), paths)
+
+
+def check_paths(job: Job, *, output: Path, run_dir: Path, report_dir, storage_url: str,
+                previous=None, key: str = "-o") -> None:
+    """Every path a tune or retune writes, and its storage URL, checked before anything runs (exit 2)."""
+    from .paths import check_folder, check_output, job_inputs
+    from .storage import check_url
+
+    inputs = job_inputs(job) + ([Path(previous)] if previous else [])
+    check_output(output, key=key, kind="config", inputs=inputs, allow=[previous] if previous else [])
+    check_folder(run_dir, key="--run-dir")
+    if report_dir:
+        check_folder(report_dir, key="--report")
+    check_url(storage_url)
+
+
+@contextmanager
+def hold_run_dir(run_dir: Path, storage_url: str, log):
+    """Create the run folder and hold its lock (a second tune there exits busy, code 8); a journal
+    lock a killed run left behind is cleared, since no other bittune process can hold it now."""
+    from .storage import RunLock, clear_stale_journal_lock
+
+    created = not run_dir.exists()
+    run_dir.mkdir(parents=True, exist_ok=True)
+    try:
+        with RunLock(run_dir):
+            clear_stale_journal_lock(storage_url, log)
+            yield
+    except BaseException:
+        # e.g. an unreachable database: a run folder this call made and nothing used is not left behind
+        if created and {p.name for p in run_dir.iterdir()} <= {RunLock.NAME}:
+            import shutil
+
+            shutil.rmtree(run_dir, ignore_errors=True)
+        raise
 
 
 def trial_counts(study) -> dict:
@@ -250,6 +305,9 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int | None =
     _shards.set_threads(1)  # the processes already fill the cores
     with threadpool_limits(1):
         job = load_job(job_path)
+        from .storage import check_url
+
+        check_url(storage_url, must_exist=True)  # a worker joins a study: it creates no storage
         store = open_storage(storage_url)
         try:
             probe = optuna.load_study(study_name=name, storage=store)
@@ -295,6 +353,7 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
     import json
 
     from ._yaml import atomic_write_text
+    from .storage import without_secrets
 
     ws, job, constants, report, space = prep.ws, prep.job, prep.constants, prep.report, prep.space
 
@@ -322,7 +381,7 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
     gc = report.gradient_check
     doc = {
         "bittune_summary": 1,
-        "job": str(job.path), "config": str(Path(output).absolute()), "study": study, "storage": storage,
+        "job": str(job.path), "config": str(Path(output).absolute()), "study": study, "storage": without_secrets(storage),
         "problem": ws.summary(), "target": ws.target_doc(),
         "target_grad_norm_sq": float(ws.target) if ws.reference is None else None,
         "constants": constants.to_dict(),

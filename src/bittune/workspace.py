@@ -129,8 +129,15 @@ def open_job(job: Job, *, reference: dict | None = None) -> Workspace:
                          f"index far too large?", source=str(job.path)) from None
     grads, losses = problem.local_grads(x0[None, :], with_loss=True)
     if not (np.all(np.isfinite(grads)) and np.all(np.isfinite(losses))):
-        raise InputError(f"start: the model's loss or gradient at the start point is not finite "
-                         f"(start.scale, start.file or regularization too large?)", source=str(job.path))
+        if job.model == "plugin":  # the user's code is the culprit, not the start settings
+            bad = [i for i in range(grads.shape[1])
+                   if not (np.all(np.isfinite(grads[0, i])) and np.all(np.isfinite(losses[0, i])))]
+            what = "gradient" if not np.all(np.isfinite(grads)) else "loss"
+            raise InputError(f"plugin: {job.model_options.get('plugin')}: the {what} returned at the start "
+                             f"point is not finite (worker(s) {bad[:5]}{' ...' if len(bad) > 5 else ''}); "
+                             f"check that function's loss_and_grad", source=str(job.path))
+        raise InputError("start: the model's loss or gradient at the start point is not finite "
+                         "(start.scale, start.file or regularization too large?)", source=str(job.path))
     if job.target.kind == "loss_gap":
         if reference is None:
             reference = reference_loss(problem, x0, model=job.model, regularization=job.regularization,
@@ -145,8 +152,8 @@ def open_job(job: Job, *, reference: dict | None = None) -> Workspace:
     target = absolute_target(problem, x0, grad_norm_sq=job.target.grad_norm_sq,
                              relative=job.target.relative)
     if not np.isfinite(target) or target <= 0:
-        raise InputError(f"target.grad_norm_sq: the gradient at the start point is zero, so a "
-                         f"relative target is 0; set target.relative: false", source=str(job.path))
+        raise InputError("target.grad_norm_sq: the gradient at the start point is zero, so a "
+                         "relative target is 0; set target.relative: false", source=str(job.path))
     return Workspace(job=job, dataset=dataset, parts=parts, problem=problem, x0=x0, target=target)
 
 

@@ -5,7 +5,6 @@ Reference: Nesterov, "Introductory Lectures on Convex Optimization" (2004), 1.2.
 
 from __future__ import annotations
 
-import numpy as np
 
 from .base import Method
 
