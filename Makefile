@@ -16,6 +16,7 @@ install: $(STAMP)
 
 demo: $(STAMP)
 	$(PY) examples/frost/make_data.py --out examples/frost/stations.svm
+	mkdir -p runs/frost
 	$(VENV)/bin/bittune tune examples/frost/job.yaml -o runs/frost/config.yaml
 	$(VENV)/bin/bittune replay runs/frost/config.yaml --job examples/frost/job.yaml
 	@echo "config: runs/frost/config.yaml (study storage in runs/frost/config.run/)"
