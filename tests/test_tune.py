@@ -7,7 +7,6 @@ import os
 import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -20,7 +19,7 @@ from bittune.cli import main
 from bittune.errors import InputError
 from bittune.search import open_storage
 from bittune.tune import study_name, tune
-from conftest import Quiet, breast_cancer_problem
+from conftest import Quiet, breast_cancer_problem, wait_for
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -215,17 +214,14 @@ def test_killed_run_resumes_without_losing_trials(frost, tmp_path):
     cmd = [sys.executable, "-m", "bittune.cli", "tune", str(job), "-o", str(out)]
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     journal = tmp_path / "c.run" / "study.journal"
-    before = []
-    deadline = time.monotonic() + 120
-    while time.monotonic() < deadline:  # wait until some trials have finished
-        time.sleep(0.2)
-        if journal.exists():
-            try:
-                before = [t for t in _trials(tmp_path / "c.run", job) if t.state == TrialState.COMPLETE]
-            except Exception:  # the journal may be mid-write; try again
-                continue
-            if len(before) >= 8:
-                break
+
+    def completed():  # read through optuna; a journal mid-write counts as "not yet" (wait_for)
+        if not journal.exists():
+            return None
+        done = [t for t in _trials(tmp_path / "c.run", job) if t.state == TrialState.COMPLETE]
+        return done if len(done) >= 8 else None
+
+    before = wait_for(completed, alive=proc, timeout=600, every=0.1, what="8 completed trials in c.run/study.journal")
     proc.send_signal(signal.SIGKILL)
     proc.wait()
     assert len(before) >= 8 and not out.exists()
