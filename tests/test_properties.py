@@ -522,6 +522,7 @@ def test_start_file_bytes(folder: Path, data: bytes) -> None:
 # Properties: YAML documents and mappings
 
 
+@pytest.mark.slow
 @PROPERTY
 @given(doc=job_documents())
 def test_yaml_job_documents(folder: Path, doc) -> None:
@@ -545,6 +546,7 @@ def test_yaml_job_documents(folder: Path, doc) -> None:
         assert isinstance(result, InputError)  # an unknown top-level key is never accepted
 
 
+@pytest.mark.slow
 @PROPERTY
 @given(doc=config_documents())
 def test_yaml_config_documents(doc) -> None:

@@ -162,6 +162,7 @@ def test_two_processes_share_one_budget(frost, tmp_path):
     assert result.exit_code == 0
 
 
+@pytest.mark.slow
 def test_seed_points_are_clipped_and_run_first(frost, tmp_path):
     extra = "  step_range: [2, 8]\n  sync_range: [2, 3]\n"
     job = _job(tmp_path, str(frost / "stations.svm"), trials=18, methods=("marina", "ef21"), extra=extra)
@@ -192,6 +193,7 @@ def test_existing_study_with_another_direction_is_refused(frost, tmp_path):
     assert not (tmp_path / "c.yaml").exists()
 
 
+@pytest.mark.slow
 def test_a_failed_write_leaves_the_previous_config(frost, tmp_path, monkeypatch):
     job = _job(tmp_path, str(frost / "stations.svm"), trials=8)
     out = tmp_path / "c.yaml"
@@ -266,6 +268,7 @@ search: {{methods: [gd, diana], compressors: [dither], trials: 30, seeds: 2}}
     assert chosen == {"fast": "gd", "metered": "diana"}
 
 
+@pytest.mark.slow
 def test_a_numerical_fault_fails_one_trial_not_the_study(frost, tmp_path, monkeypatch):
     import bittune.search as search
 
