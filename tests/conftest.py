@@ -52,3 +52,25 @@ def random_problem(*, model: str, sparse: bool, seed: int, sizes=(5, 9, 6, 8), d
 @pytest.fixture(scope="session")
 def cancer():
     return breast_cancer_problem()
+
+
+def wait_for(condition, *, what: str, timeout: float = 300.0, every: float = 0.1, alive=None):
+    """Poll ``condition()`` until it returns something truthy and return that; fail naming
+    ``what`` after ``timeout`` seconds (generous: the machine may be loaded) or as soon as the
+    process ``alive`` (a Popen) has exited without the condition holding. Exceptions from
+    ``condition`` (a storage read while another process writes) count as "not yet"."""
+    import time
+
+    deadline = time.monotonic() + timeout
+    while True:
+        try:
+            value = condition()
+        except Exception:  # noqa: BLE001 - a half-written journal or a study not yet created
+            value = None
+        if value:
+            return value
+        if alive is not None and alive.poll() is not None:
+            pytest.fail(f"{what}: did not happen before the process exited (code {alive.returncode})")
+        if time.monotonic() > deadline:
+            pytest.fail(f"{what}: did not happen within {timeout:.0f} s")
+        time.sleep(every)

@@ -1,4 +1,5 @@
-"""SIGKILL at random moments of `bittune tune`, then rerun: nothing finished is lost, no config is
+"""SIGKILL `bittune tune` at moments set by its observed progress (the study created, a count of
+finished trials in its journal), then rerun: nothing finished is lost, no config is
 ever half-written, and the previous config stays intact until a complete new one replaces it."""
 
 from __future__ import annotations
@@ -6,10 +7,8 @@ from __future__ import annotations
 import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
-import numpy as np
 import optuna
 import pytest
 import yaml
@@ -17,9 +16,24 @@ from optuna.trial import TrialState
 
 from bittune.config import load_config
 from bittune.search import open_storage
+from conftest import wait_for
 
 ROOT = Path(__file__).resolve().parents[1]
 PREVIOUS = "bittune_config: 1\nmethod: gd\ncompressor: {name: identity}\nstep_size: 0.01\n"
+
+
+def _count(run_dir: Path) -> int | None:
+    """Finished (complete or pruned) trials in the run's journal, read through optuna; None
+    before the study exists."""
+    journal = run_dir / "study.journal"
+    if not journal.exists():
+        return None
+    storage = open_storage(str(journal))
+    summaries = optuna.get_all_study_summaries(storage)
+    if not summaries:
+        return None
+    study = optuna.load_study(study_name=summaries[0].study_name, storage=storage)
+    return len(study.get_trials(deepcopy=False, states=(TrialState.COMPLETE, TrialState.PRUNED)))
 
 
 def _finished(run_dir: Path) -> dict[int, float]:
@@ -35,7 +49,7 @@ def _finished(run_dir: Path) -> dict[int, float]:
 
 
 @pytest.mark.slow
-def test_random_kills_never_lose_trials_or_half_write_the_config(tmp_path):
+def test_kills_at_observed_progress_never_lose_trials_or_half_write_the_config(tmp_path):
     subprocess.run([sys.executable, str(ROOT / "examples/frost/make_data.py"), "--out", str(tmp_path / "st.svm"),
                     "--nights", "120"], check=True, capture_output=True)
     job = tmp_path / "job.yaml"
@@ -51,17 +65,25 @@ search: {methods: [diana, marina], compressors: [rand_k, dither], trials: 30, se
     out = tmp_path / "config.yaml"
     out.write_text(PREVIOUS)
     cmd = [sys.executable, "-m", "bittune.cli", "tune", str(job), "-o", str(out)]
-    # One uninterrupted run elsewhere measures how long a run takes, so kill moments spread
-    # over probe, trials, selection, report and the config write.
-    t0 = time.monotonic()
-    subprocess.run(cmd[:-1] + [str(tmp_path / "timing.yaml")], check=True, capture_output=True)
-    duration = time.monotonic() - t0
-    rng = np.random.default_rng(2024)
+    run_dir = tmp_path / "config.run"
+    # Kill moments follow observed progress, not the clock (a loaded machine stretches every
+    # phase): once the study exists (probe done), after 3, 8, 14, 20 and 26 finished trials, and
+    # as soon as all 30 have finished (selection, report and config write are then under way).
+    # Each rerun resumes, so a threshold already met waits for one more finished trial instead.
+    thresholds = [0, 3, 8, 14, 20, 26, 30]
     kills = 0
     seen: dict[int, float] = {}
-    for delay in np.sort(rng.uniform(0.3, 0.8, size=8)) * duration:
+    for threshold in thresholds:
+        start = _count(run_dir)
         proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        time.sleep(delay / 8 + 0.2)  # each rerun resumes, so it needs less time: kill sooner
+        if threshold == 0 and start is None:
+            what = "the study in config.run/study.journal was created"
+            wait_for(lambda: _count(run_dir) is not None, what=what, every=0.02, alive=proc)
+        else:
+            goal = 30 if threshold == 30 else max(threshold, (start or 0) + 1)
+            if (start or 0) < goal:
+                wait_for(lambda: (_count(run_dir) or 0) >= goal, every=0.02, alive=proc,
+                         what=f"{goal} finished trials in the journal (had {start})")
         if proc.poll() is None:
             proc.send_signal(signal.SIGKILL)
             kills += 1
@@ -70,9 +92,9 @@ search: {methods: [diana, marina], compressors: [rand_k, dither], trials: 30, se
         if text != PREVIOUS:  # replaced: then it must be a complete, valid config
             cfg = load_config(out)
             assert "expected" in cfg.extra and "provenance" in cfg.extra
-        now = _finished(tmp_path / "config.run")
+        now = _finished(run_dir)
         for number, value in seen.items():  # no completed trial is ever lost or changed
-            assert now.get(number) == value
+            assert now.get(number) == value, f"trial {number} was {value}, now {now.get(number)}"
         seen = now
     assert kills >= 4
     final = subprocess.run(cmd, capture_output=True, text=True)

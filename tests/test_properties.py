@@ -27,7 +27,7 @@ from hypothesis import strategies as st
 
 from bittune import config as config_mod
 from bittune import job as job_mod
-from bittune._yaml import REQUIRED, Param, dump_yaml, parse_yaml, show
+from bittune._yaml import REQUIRED, Param, dump_yaml, key_text, parse_yaml, show
 from bittune.config import Config, config_to_dict, load_config, parse_config
 from bittune.data import Dataset, load_data
 from bittune.errors import InputError
@@ -101,6 +101,35 @@ def _expect_input_error_or(fn, *, allowed_warning: str | None = None, allow_nume
             continue  # numpy overflow while evaluating an absurd start point; rejected right after
         raise AssertionError(f"unexpected warning {w.category.__name__}: {w.message}")
     return result
+
+
+def _names_where(exc: InputError, *, source: str, heads: tuple[str, ...] = ()) -> None:
+    """What any InputError from a reader must say, whatever the input: the file (or the
+    job's source) it came from, and for every problem where it is: a line of that file
+    (``path:3: ...``), a key path starting with one of ``heads``, or ``top level``."""
+    text = str(exc)
+    assert source in text, f"the message does not name {source!r}: {text!r}"
+    for problem in exc.problems:
+        assert ": " in problem, f"no 'where: what' form: {problem!r}"
+        assert problem.startswith((source, "top level", *heads)), f"names neither a line nor a key: {problem!r}"
+
+
+def _unknown_keys_named(exc, doc, known, *, prefix: str = "") -> int:
+    """Every key of ``doc`` outside ``known`` is named as ``prefix + key: unknown key``; returns how many."""
+    if not isinstance(doc, dict):
+        return 0
+    missing = [k for k in doc if not (isinstance(k, str) and k in known)]
+    for k in missing:
+        head = f"{prefix}{key_text(k)}: unknown key ("
+        assert isinstance(exc, InputError), f"unknown key {head!r} accepted"
+        assert any(p.startswith(head) for p in exc.problems), (head, exc.problems)
+    return len(missing)
+
+
+def _job_heads(doc) -> tuple[str, ...]:
+    """Key paths a job error may start with: the schema's names and the document's own keys."""
+    own = [key_text(k) for k in doc] if isinstance(doc, dict) else []
+    return tuple(JOB_KEYS + own)
 
 
 # ---------------------------------------------------------------------------
@@ -340,6 +369,12 @@ def test_job_file_bytes(folder: Path, data: bytes) -> None:
     assert isinstance(result, (Job, InputError))
     if isinstance(result, Job):
         _check_job(result, folder)
+    else:  # the file is named, each problem by its line or key path
+        try:
+            doc = parse_yaml(data.decode("utf-8"), source=str(path))
+        except (InputError, UnicodeDecodeError):
+            doc = None
+        _names_where(result, source=str(path), heads=_job_heads(doc))
 
 
 @PROPERTY
@@ -352,6 +387,13 @@ def test_config_file_bytes(folder: Path, data: bytes) -> None:
     assert isinstance(result, (Config, InputError))
     if isinstance(result, Config):
         _check_config(result)
+    else:
+        try:
+            doc = parse_yaml(data.decode("utf-8"), source=str(path))
+        except (InputError, UnicodeDecodeError):
+            doc = None
+        own = tuple(key_text(k) for k in doc) if isinstance(doc, dict) else ()
+        _names_where(result, source=str(path), heads=tuple(CONFIG_KEYS) + own)
 
 
 @PROPERTY
@@ -364,6 +406,8 @@ def test_svmlight_file_bytes(folder: Path, data: bytes) -> None:
     assert isinstance(result, (Dataset, InputError))
     if isinstance(result, Dataset):
         _check_dataset(result)
+    else:  # every problem starts with the file, most with its line: fuzz.svm:3: ...
+        _names_where(result, source=str(path))
 
 
 @PROPERTY
@@ -377,6 +421,10 @@ def test_csv_file_bytes(folder: Path, data: bytes, group: str | None) -> None:
     if isinstance(result, Dataset):
         _check_dataset(result)
         assert (result.groups is None) == (group is None)
+    else:  # the file, or the job key of a column that is not there (which names the file too)
+        _names_where(result, source=str(path), heads=("data.label_column", "data.group_column"))
+        for problem in result.problems:
+            assert str(path) in problem, problem
 
 
 @st.composite
@@ -429,6 +477,8 @@ def test_npz_file_bytes(folder: Path, data: bytes) -> None:
     assert isinstance(result, (Dataset, InputError))
     if isinstance(result, Dataset):
         _check_dataset(result)
+    else:
+        _names_where(result, source=str(path))
 
 
 @st.composite
@@ -463,12 +513,16 @@ def test_start_file_bytes(folder: Path, data: bytes) -> None:
     assert isinstance(result, (Workspace, InputError))
     if isinstance(result, Workspace):
         assert result.x0.shape == (3,) and np.isfinite(result.x0).all() and result.target > 0
+    else:  # the job key that holds the file (or the start point it gave), and the job's source
+        assert all(p.startswith(("start.file: ", "start: ")) for p in result.problems), result.problems
+        assert str(result).startswith("job.yaml: "), str(result)
 
 
 # ---------------------------------------------------------------------------
 # Properties: YAML documents and mappings
 
 
+@pytest.mark.slow
 @PROPERTY
 @given(doc=job_documents())
 def test_yaml_job_documents(folder: Path, doc) -> None:
@@ -479,8 +533,20 @@ def test_yaml_job_documents(folder: Path, doc) -> None:
     assert isinstance(result, (Job, InputError))
     if isinstance(result, Job):
         _check_job(result, folder)
+    else:
+        _names_where(result, source="job.yaml", heads=_job_heads(parsed := parse_yaml(text, source="job.yaml")))
+        # Predictable content: every unknown key is named with its path (DEVELOPERS.md: unknown
+        # keys are errors with the closest known key suggested), at the top and in each section.
+        _unknown_keys_named(result, parsed, [*job_mod.TOP, *job_mod.SECTIONS])
+        if isinstance(parsed, dict):
+            for name, schema in job_mod.SECTIONS.items():
+                if isinstance(parsed.get(name), dict):
+                    _unknown_keys_named(result, parsed[name], list(schema), prefix=f"{name}.")
+    if isinstance(doc, dict) and any(not isinstance(k, str) or k not in JOB_KEYS for k in doc):
+        assert isinstance(result, InputError)  # an unknown top-level key is never accepted
 
 
+@pytest.mark.slow
 @PROPERTY
 @given(doc=config_documents())
 def test_yaml_config_documents(doc) -> None:
@@ -489,6 +555,23 @@ def test_yaml_config_documents(doc) -> None:
     assert isinstance(result, (Config, InputError))
     if isinstance(result, Config):
         _check_config(result)
+    else:
+        parsed = parse_yaml(text, source="c.yaml")
+        own = tuple(key_text(k) for k in parsed) if isinstance(parsed, dict) else ()
+        _names_where(result, source="c.yaml", heads=tuple(CONFIG_KEYS) + own)
+    if isinstance(doc, dict):
+        # The typos config_documents plants are close to a known key: always an error naming it
+        # with the suggestion (config.py keeps other unknown text keys as free sections).
+        for typo, meant in (("expectd", "expected"), ("step", "step_size"), ("methd", "method"),
+                            ("sync_probabilty", "sync_probability")):
+            if typo in doc:
+                assert isinstance(result, InputError), typo
+                assert f"{typo}: unknown key (did you mean {meant!r}?)" in result.problems, result.problems
+        comp = doc.get("compressor")
+        if isinstance(comp, dict) and "kk" in comp and comp.get("name") in config_mod.COMPRESSORS:
+            # (with no usable name the parser cannot know the compressor's keys: only the name is reported)
+            assert isinstance(result, InputError)
+            assert any(p.startswith("compressor.kk: unknown key") for p in result.problems), result.problems
 
 
 @PROPERTY
@@ -504,6 +587,9 @@ def test_python_job_mappings(folder: Path, doc, where, key, value) -> None:
     result = _expect_input_error_or(lambda: parse_job(doc, base_dir=folder, source="job"),
                                     allowed_warning="ignored unless")
     assert isinstance(result, (Job, InputError))
+    if isinstance(result, InputError):
+        _names_where(result, source="job", heads=_job_heads(doc))
+        _unknown_keys_named(result, doc, [*job_mod.TOP, *job_mod.SECTIONS])
 
 
 @PROPERTY
@@ -517,6 +603,9 @@ def test_python_config_mappings(doc, where, key, value) -> None:
             target[key] = value
     result = _expect_input_error_or(lambda: parse_config(doc, source="c"))
     assert isinstance(result, (Config, InputError))
+    if isinstance(result, InputError):
+        own = tuple(key_text(k) for k in doc) if isinstance(doc, dict) else ()
+        _names_where(result, source="c", heads=tuple(CONFIG_KEYS) + own)
 
 
 # ---------------------------------------------------------------------------

@@ -314,7 +314,7 @@ def _chromium(exe: str, page: Path, tmp: Path) -> tuple[Path, str]:
                            "--disable-background-networking", "--disable-component-update", "--disable-sync",
                            f"--user-data-dir={tmp / ('profile-' + page.stem)}", "--enable-logging=stderr", "--v=0",
                            f"--screenshot={shot}", "--window-size=1200,2000", page.as_uri()],
-                          capture_output=True, text=True, timeout=120)
+                          capture_output=True, text=True, timeout=600)  # a hang guard only (loaded machine)
     return shot, proc.stderr
 
 
