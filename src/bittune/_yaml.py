@@ -355,7 +355,8 @@ def key_text(key: Any) -> str:
 
 def unknown_key(path: str, key: Any, known: list[str]) -> str:
     """``workers.cout: unknown key (did you mean 'count'?)``."""
-    close = difflib.get_close_matches(key_text(key), known, n=1)
+    text = key_text(key)
+    close = difflib.get_close_matches(text, known, n=1) or [k for k in known if len(text) >= 3 and k.startswith(text)][:1]
     hint = f"did you mean {close[0]!r}?" if close else "expected one of " + ", ".join(known)
     return f"{path}: unknown key ({hint})"
 

@@ -78,6 +78,14 @@ _KNOWN = ["bittune_config", *TOP, "compressor", "problem"]
 TYPO_CUTOFF = 0.75
 
 
+def _looks_like_a_typo(key: str) -> bool:
+    """Close to a known key (difflib, TYPO_CUTOFF), or a known key cut short (``step`` for
+    ``step_size``, ``sync`` for ``sync_probability``); common practice, no source."""
+    known = _KNOWN + list(FREE_SECTIONS)
+    return bool(difflib.get_close_matches(key, known, cutoff=TYPO_CUTOFF)) or any(
+        k.startswith(key) for k in known if len(key) >= 3)
+
+
 #: Significant digits of the figures a config reports (expected bits, rounds, gains); the settings a
 #: launcher uses (step size, sync probability, shift rate) stay exact. Four digits: finer than the
 #: seed-to-seed spread of any figure seen so far (common practice, no source).
@@ -168,8 +176,7 @@ def parse_config(mapping: Any, *, source: str) -> Config:
             continue
         if not isinstance(key, str):
             problems.append(unknown_key(key_text(key), key, _KNOWN))
-        elif key not in FREE_SECTIONS and difflib.get_close_matches(key, _KNOWN + list(FREE_SECTIONS),
-                                                                    cutoff=TYPO_CUTOFF):
+        elif key not in FREE_SECTIONS and _looks_like_a_typo(key):
             problems.append(unknown_key(key, key, _KNOWN + list(FREE_SECTIONS)))
         else:
             extra[key] = deepcopy(value)
