@@ -116,6 +116,18 @@ def test_output_folder_problems_are_refused_up_front(job, tmp_path, capsys):
             assert _digest(tmp_path) == before  # missing folders are not created
 
 
+def test_report_folder_problems_are_refused_up_front(tmp_path, capsys):
+    """`bittune report RUN -o X`: a file or a folder under a file is exit 2 naming -o, nothing written."""
+    (tmp_path / "run").mkdir()
+    (tmp_path / "afile").write_text("x")
+    before = _digest(tmp_path)
+    for out, message in ((tmp_path / "afile", "exists and is not a folder"),
+                         (tmp_path / "afile" / "rep", "is not a folder")):
+        code, text = _run(["report", tmp_path / "run", "-o", out], capsys)
+        assert code == EXIT["input"] and "-o:" in text and message in text, text
+        assert _digest(tmp_path) == before
+
+
 def test_our_own_previous_output_is_replaced(job, tmp_path, capsys):
     out = tmp_path / "constants.yaml"
     code, _ = _run(["probe", job, "-o", out], capsys)

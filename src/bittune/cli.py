@@ -8,8 +8,10 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 import traceback
+from pathlib import Path
 
 import numpy as np
 
@@ -268,9 +270,20 @@ def _cmd_worker(args: argparse.Namespace) -> int:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
+    from ._yaml import NO_SPACE
+    from .errors import WriteError
+    from .paths import check_folder
     from .report import write_report
 
-    paths = write_report(args.run_dir, out_dir=args.output)
+    if args.output is not None:
+        check_folder(args.output, key="-o")  # a file, or under a read-only or missing root: exit 2
+    try:
+        paths = write_report(args.run_dir, out_dir=args.output)
+    except OSError as exc:
+        if exc.errno not in NO_SPACE:
+            raise
+        where = args.output or Path(args.run_dir) / "report"
+        raise WriteError(f"{where}: cannot write the report ({os.strerror(exc.errno)})") from None
     if args.json:
         _emit_json({k: str(v) for k, v in paths.items()})
     else:
