@@ -231,6 +231,14 @@ search: {{methods: [gd, diana], compressors: [dither], trials: 30, seeds: 2}}
         e = cfg["expected"]
         assert e["mean_seconds"] == pytest.approx(e["mean_rounds"] * 0.011 + e["mean_bits_per_worker"] / up
                                                   + e["mean_rounds"] * 32 * 38 / 1e12, rel=1e-9)
+        # The report's seconds curves end at the objective's seconds of each validation seed, exactly.
+        from bittune.report import report_data, seconds_curve
+
+        summary = json.loads((tmp_path / f"{name}-config.run" / "summary.json").read_text())
+        assert [seconds_curve(summary, c)[-1] for c in summary["curves"]["winner"]] == e["seconds"]
+        assert result.report["convergence_seconds"].exists()
+        study = optuna.load_study(study_name=summary["study"], storage=open_storage(summary["storage"]))
+        assert "convergence_seconds" in report_data(summary, study)
         chosen[name] = cfg["method"]
     assert chosen == {"fast": "gd", "metered": "diana"}
 

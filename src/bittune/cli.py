@@ -198,7 +198,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         raise InputError("--workers-only: needs --storage (a database the workers can reach)")
     result = tune(args.job, output=args.output, trials=args.trials, jobs=args.jobs, seed=args.seed,
                   run_dir=args.run_dir, storage=args.storage, report_dir=args.report, workers_only=args.workers_only,
-                  allow_code=args.allow_code)
+                  allow_code=args.allow_code, study=args.study)
     cfg, exp = result.config, result.config["expected"]
     if args.json:
         _emit_json({"config": str(args.output), "exit_code": result.exit_code, "study": result.study_name,
@@ -328,6 +328,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers-only", action="store_true",
                    help="run no trial here: enqueue the seeds, wait for `bittune worker` processes to spend the "
                         "budget, then select and write the config (needs --storage)")
+    p.add_argument("--study", metavar="NAME",
+                   help="the study's name, for `bittune worker --study NAME` (default: made from the job and data "
+                        "digests); letters, digits, '.', '_', '-'")
     p.add_argument("--json", action="store_true", help="print one JSON summary document on stdout")
     p.set_defaults(func=_cmd_tune)
 
