@@ -278,7 +278,7 @@ def _read_csv(raw: bytes, src: str, label_column: str | None, group_column: str 
     X = np.array(rows, dtype=np.float64).reshape(len(rows), len(fi))
     g = None
     if gi >= 0:
-        _same_ids(groups, src, group_column)
+        _same_ids(groups, f"data.group_column: {src}, column {group_column!r}")
         # Integer group ids sort as numbers (worker order of the column split).
         g = np.array([int(v) for v in groups], dtype=np.int64) if all(
             _INT_S.fullmatch(v) for v in groups) else np.array(groups, dtype=str)
@@ -286,7 +286,7 @@ def _read_csv(raw: bytes, src: str, label_column: str | None, group_column: str 
                    label_column=label_column, group_column=group_column)
 
 
-def _same_ids(ids: list[str], src: str, column: str) -> None:
+def _same_ids(ids: list[str], where: str) -> None:
     """Group ids written two ways for one number ('1' and '01', '2' and '2.0') are an error:
     as text they would make two workers of what is one group, as numbers they would merge
     two groups the user may have meant apart."""
@@ -298,7 +298,7 @@ def _same_ids(ids: list[str], src: str, column: str) -> None:
     clash = sorted((sorted(t) for t in spellings.values() if len(t) > 1), key=lambda t: t[0])
     if clash:
         shown = "; ".join(" and ".join(repr(v) for v in t) for t in clash[:5])
-        raise InputError(f"data.group_column: {src}, column {column!r} writes one group id in several "
+        raise InputError(f"{where} writes one group id in several "
                          f"ways ({shown}); write each id the same way on every row")
 
 
@@ -363,6 +363,8 @@ def _read_npz(p: Path, src: str) -> Dataset:
             more = f" (and {rows.size - 1} more rows)" if rows.size > 1 else ""
             problems.append(f"{src}: {name} row {rows[0]} (0-based) holds NaN or inf{more}")
     _raise(problems)
+    if g is not None and g.dtype.kind in "US":  # text ids: '1' and '01' would be two workers
+        _same_ids([str(v).strip() for v in g.tolist()], f"{src}, array 'groups'")
     return Dataset(X=X, y=y, groups=g, source=src)
 
 
