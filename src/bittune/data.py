@@ -293,8 +293,8 @@ def _same_ids(ids: list[str], where: str) -> None:
     if not ids or not all(_NUM_S.fullmatch(v) for v in ids):
         return
     spellings: dict[float, set[str]] = {}
-    for v in set(ids):
-        spellings.setdefault(float(v), set()).add(v)
+    for v in set(ids):  # exact ints where possible: 17-digit ids must not merge through float rounding
+        spellings.setdefault(int(v) if _INT_S.fullmatch(v) else float(v), set()).add(v)
     clash = sorted((sorted(t) for t in spellings.values() if len(t) > 1), key=lambda t: t[0])
     if clash:
         shown = "; ".join(" and ".join(repr(v) for v in t) for t in clash[:5])
