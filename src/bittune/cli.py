@@ -337,7 +337,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("worker", help="join a running study (from this or another machine) and run trials")
     p.add_argument("--job", required=True, help="the same job file as the coordinator's (data path may differ)")
     p.add_argument("--storage", required=True, help="the study's storage URL")
-    p.add_argument("--study", required=True, help="the study name (printed by the coordinator)")
+    p.add_argument("--study", required=True, help="the study name (printed by the coordinator, or its --study)")
     p.add_argument("--trials", type=_positive_int, help="global budget (default: the coordinator's)")
     p.add_argument("--seed", type=_nonneg_int, help="this worker's sampler seed (default: fresh entropy)")
     p.add_argument("--index", type=_nonneg_int, default=0, help="a tag recorded on this worker's trials")
