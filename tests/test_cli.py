@@ -178,3 +178,21 @@ def test_theory_json_rows(demo, capsys):
 def test_theory_rejects_a_bad_compressor_spec(demo, capsys):
     assert main(["theory", str(demo / "job.yaml"), "--compressor", "rand_k:0"]) == 2
     assert "--compressor" in capsys.readouterr().err
+
+
+def test_tune_on_degenerate_data_exits_2_and_writes_nothing(tmp_path):
+    """One class only (every label 1): `bittune tune` names the cause, exits 2 and leaves
+    neither the config nor its run folder behind (README, "What bittune checks")."""
+    rng = np.random.default_rng(7)
+    rows = "\n".join(f"1 1:{a:.3f} 2:{b:.3f}" for a, b in rng.normal(size=(8, 2)))
+    (tmp_path / "one.svm").write_text(rows + "\n")
+    (tmp_path / "job.yaml").write_text("data: one.svm\nmodel: logistic_nonconvex\nworkers: {count: 2, split: iid}\n"
+                                       "target: {grad_norm_sq: 1e-3}\nbudget: {max_rounds: 100}\n")
+    before = sorted(p.name for p in tmp_path.iterdir())
+    proc = subprocess.run([sys.executable, "-m", "bittune.cli", "tune", str(tmp_path / "job.yaml"),
+                           "-o", str(tmp_path / "out" / "config.yaml"), "--trials", "2"],
+                          capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 2, proc.stderr
+    assert "one.svm: every label is 1 (8 rows): a classifier needs both classes" in proc.stderr
+    assert proc.stdout == ""
+    assert sorted(p.name for p in tmp_path.iterdir()) == before  # no out/, no config, no run folder

@@ -76,15 +76,52 @@ def published(label: str, d: int, n: int = N) -> dict:
     # dither: Alistarh et al. 2017 (QSGD), Lemma 3.1 (i) and (iii); bit model docs/theory.md §1.2
     omega = min(d / p**2, math.sqrt(d) / p)
     density = min(d, p * (p + math.sqrt(d)))
+    # nominal: the fixed-width count (header "10"/"11" + norm) at the nnz bound
     dense = d * (1 + math.ceil(math.log2(p + 1)))
-    bits = 33 + min(dense, density * (1 + b_ix + math.ceil(math.log2(p))))
+    bits = 34 + min(dense, density * (1 + b_ix + math.ceil(math.log2(p))))
     return dict(unbiased=True, omega=omega, alpha=1 / (1 + omega), density=density, bits=bits)
 
 
-def dither_bits(nnz: np.ndarray, d: int, s: int) -> np.ndarray:
-    """docs/theory.md §1.2: 32 (norm) + 1 (flag) + min(dense fixed width, sparse)."""
-    dense = d * (1 + math.ceil(math.log2(s + 1)))
-    return 33 + np.minimum(dense, nnz * (1 + math.ceil(math.log2(d)) + math.ceil(math.log2(s))))
+def omega_code(k: int) -> str:
+    """The Elias omega code word of k >= 1 as a string of 0/1 (Elias 1975, "Universal
+    codeword sets and representations of the integers"; the algorithm from memory:
+    start with "0"; while k > 1, put binary(k) in front and let k = len(binary(k)) - 1)."""
+    code = "0"
+    while k > 1:
+        b = format(k, "b")
+        code, k = b + code, len(b) - 1
+    return code
+
+
+def dither_message(levels, d: int, s: int) -> str:
+    """One dithered message written out bit by bit ("n" norm bits, "s" sign bits), the
+    shortest of the three codings of docs/theory.md §1.2-§1.3 (QSGD's Elias coding, dense
+    and sparse fixed width), each behind its prefix-free header 0 / 10 / 11."""
+    norm_bits = "n" * 32
+    nz = [(j + 1, int(lv)) for j, lv in enumerate(levels) if lv]
+    elias, prev = "0" + norm_bits, 0
+    for j, lv in nz:
+        elias += omega_code(j - prev) + "s" + omega_code(lv)
+        prev = j
+    width = math.ceil(math.log2(s + 1))
+    dense = "10" + norm_bits + "".join("s" + format(int(lv), f"0{width}b") for lv in levels)
+    b_ix, b_lv = math.ceil(math.log2(d)), math.ceil(math.log2(s))
+    sparse = "11" + norm_bits + "".join("s" + format(j - 1, f"0{b_ix}b") + (format(lv - 1, f"0{b_lv}b") if b_lv
+                                                                             else "") for j, lv in nz)
+    return min((elias, dense, sparse), key=len)
+
+
+def dither_bits(v: np.ndarray, out: np.ndarray, s: int) -> np.ndarray:
+    """Bits of every message of a block, each written out by :func:`dither_message`; the
+    levels are recovered from the output, xi_j = s |Q(x)_j| / ||x|| (rounded: the division
+    is off by a few ulps)."""
+    got = np.empty(v.shape[:2])
+    for b in range(v.shape[0]):
+        for i in range(v.shape[1]):
+            nrm = np.linalg.norm(v[b, i])
+            levels = np.rint(s * np.abs(out[b, i]) / nrm) if nrm > 0 else np.zeros(v.shape[2])
+            got[b, i] = len(dither_message(levels, v.shape[2], s))
+    return got
 
 
 def block(seed: int, shape=(B, N, D)) -> np.ndarray:
@@ -199,7 +236,7 @@ def test_bits_match_formula(label):
         out, bits = c.compress(block(10 + round_), KEYS, round_)
         if name_of(label) == "dither":
             s = int(label.partition(":")[2])
-            expected = dither_bits(np.count_nonzero(out, axis=-1), D, s)
+            expected = dither_bits(block(10 + round_), out, s)
         elif name_of(label) == "perm_k":  # 32 bits per kept real coordinate, 32 d over the n workers
             expected = 32.0 * np.count_nonzero(out, axis=-1)
             np.testing.assert_array_equal(bits.sum(axis=1), 32.0 * D)
@@ -211,14 +248,26 @@ def test_bits_match_formula(label):
 @pytest.mark.parametrize(
     "d, s, x, nnz, bits",
     [
+        # Elias omega lengths used below (Elias 1975; from memory): 1 -> "0" (1 bit),
+        # 3 -> "11 0" (3), 4 -> "10 100 0" (6), 8 -> "11 1000 0" (7),
+        # 1000 -> "11 1001 1111101000 0" (17). Header: 0 Elias, 10 dense, 11 sparse.
         # ||x|| = 4, s|x_j|/||x|| = 1 for all j: every level is 1, Q(x) = x, nnz = 16.
-        # dense 16 (1 + ceil log2 5) = 64 < sparse 16 (1 + 4 + 2) = 112 -> 32 + 1 + 64
-        (16, 4, np.ones(16), 16, 97),
-        # ||x|| = 5, levels 3 and 4 exactly; sparse 2 (1 + 4 + 3) = 16 < dense 10 (1 + 3) = 40
-        (10, 5, np.r_[3.0, -4.0, np.zeros(8)], 2, 49),
-        # s = 1: ceil(log2 1) = 0, sparse 1 (1 + 4 + 0) = 5 < dense 10 (1 + 1) = 20
+        # Elias: 16 x (gap 1: 1 + sign 1 + level 1: 1) = 48 -> 1 + 32 + 48 = 81;
+        # fixed: dense 16 (1 + ceil log2 5) = 64 < sparse 16 (1 + 4 + 2) = 112 -> 2 + 32 + 64 = 98
+        (16, 4, np.ones(16), 16, 81),
+        # ||x|| = 5, levels 3 and 4 at positions 1 and 2: Elias (1 + 1 + 3) + (1 + 1 + 6) = 13
+        # -> 33 + 13 = 46; fixed: sparse 2 (1 + 4 + 3) = 16 < dense 10 (1 + 3) = 40 -> 34 + 16 = 50
+        (10, 5, np.r_[3.0, -4.0, np.zeros(8)], 2, 46),
+        # s = 1, level 1 at position 3: Elias gap 3 (3) + sign (1) + level 1 (1) = 5 -> 38;
+        # fixed: sparse 1 (1 + 4 + 0) = 5 < dense 10 (1 + 1) = 20 -> 34 + 5 = 39
         (10, 1, np.r_[0.0, 0.0, -2.5, np.zeros(7)], 1, 38),
-        # zero vector: norm and flag only
+        # ||x|| = 16, s = 16: every level is 8. Elias 4 x (1 + 1 + 7) = 36 -> 69; fixed dense
+        # 4 (1 + ceil log2 17) = 24 < sparse 4 (1 + 2 + 4) = 28 -> 34 + 24 = 58: fixed wins
+        (4, 16, np.full(4, 8.0), 4, 58),
+        # one non-zero at position 1000 of d = 1000, s = 1: Elias 17 + 1 + 1 = 19 -> 52;
+        # fixed sparse 1 (1 + 10 + 0) = 11 < dense 1000 (1 + 1) -> 34 + 11 = 45: fixed wins
+        (1000, 1, np.r_[np.zeros(999), 7.0], 1, 45),
+        # zero vector: header 0 and the norm, no non-zero: 33 (fixed would be 34)
         (10, 5, np.zeros(10), 0, 33),
     ],
 )
@@ -230,6 +279,7 @@ def test_dither_bits_hand_computed(d, s, x, nnz, bits):
     np.testing.assert_allclose(out, v, rtol=1e-15, atol=0)
     assert np.all(np.count_nonzero(out, axis=-1) == nnz)
     np.testing.assert_array_equal(got, np.full((B, N), float(bits)))
+    assert dither_bits(v[:1, :1], out[:1, :1], s)[0, 0] == bits  # the bit-by-bit writer agrees
 
 
 @pytest.mark.parametrize("label", SETTINGS)

@@ -432,3 +432,15 @@ def test_partition_argument_errors() -> None:
     for bad in (0, 6):
         with pytest.raises(InputError, match=r"^workers\.count: "):
             partition(ds, n_workers=bad, split="iid", seed=0)
+
+
+def test_group_ids_written_two_ways_in_npz_are_an_error(tmp_path) -> None:
+    """Text ids '1' and '01' would make two workers of one group (our rule; CSV: tests/corpus)."""
+    rng = np.random.default_rng(3)
+    path = tmp_path / "g.npz"
+    np.savez(path, X=rng.normal(size=(4, 2)), y=np.array([0.0, 1, 0, 1]), groups=np.array(["1", "01", "2", "2"]))
+    with pytest.raises(InputError, match=r"g\.npz, array 'groups' writes one group id in several ways "
+                                         r"\('01' and '1'\)"):
+        load_data(path)
+    np.savez(path, X=rng.normal(size=(4, 2)), y=np.array([0.0, 1, 0, 1]), groups=np.array(["a", "b", "a", "b"]))
+    assert load_data(path).groups.tolist() == ["a", "b", "a", "b"]

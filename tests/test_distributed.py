@@ -203,3 +203,61 @@ def test_worker_refuses_a_study_of_another_job(job, tmp_path):
     proc = subprocess.run(BITTUNE + ["worker", "--job", str(job), "--storage", storage, "--study", "other"],
                           capture_output=True, text=True, env=_env())
     assert proc.returncode == 2 and "another job" in proc.stderr
+
+
+@pytest.mark.parametrize("name", ["", "two words", "../up", "-dash-first", "x" * 129, "semi;colon"])
+def test_tune_refuses_an_odd_study_name_before_anything_runs(job, tmp_path, name, capsys):
+    from bittune.cli import main
+
+    out = tmp_path / "c.yaml"
+    assert main(["tune", str(job), "-o", str(out), f"--study={name}"]) == 2  # = form: "-dash" is no option
+    err = capsys.readouterr().err
+    assert "bittune: error: --study: the study name" in err
+    assert list(tmp_path.iterdir()) == []  # no config, no run folder
+
+
+def test_tune_refuses_a_named_study_of_another_job(job, tmp_path, capsys):
+    from bittune.cli import main
+
+    run = tmp_path / "c.run"
+    run.mkdir()
+    storage = str(run / "study.journal")
+    st = optuna.create_study(study_name="frost-night.1", storage=open_storage(storage))
+    st.set_user_attr("job_digest", "0" * 64)
+    before = sorted(p.name for p in run.iterdir())
+    code = main(["tune", str(job), "-o", str(tmp_path / "c.yaml"), "--study", "frost-night.1", "--trials", "2"])
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert "--study: study 'frost-night.1' exists and belongs to another job file (digest 000000000000" in err
+    assert "choose another --study name" in err
+    assert not (tmp_path / "c.yaml").exists() and sorted(p.name for p in run.iterdir()) == before
+    assert len(optuna.load_study(study_name="frost-night.1", storage=open_storage(storage)).trials) == 0
+
+
+@pytest.mark.slow
+def test_a_scheduler_names_the_study_and_a_worker_joins_it(job, tmp_path):
+    """`tune --study NAME --workers-only` on the journal storage; `worker --study NAME` runs the trials."""
+    storage, name, out = str(tmp_path / "shared.journal"), "frost-night.2026-12-02", tmp_path / "c.yaml"
+    coord = subprocess.Popen(BITTUNE + ["tune", str(job), "-o", str(out), "--storage", storage, "--workers-only",
+                                        "--study", name, "--trials", "8", "--json"],
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=_env())
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline:  # the coordinator has probed and seeded the named study
+        try:
+            if optuna.load_study(study_name=name, storage=open_storage(storage)).user_attrs.get("budget"):
+                break
+        except Exception:  # not created yet (KeyError), or the journal file not yet there
+            pass
+        time.sleep(0.3)
+    worker = subprocess.run(BITTUNE + ["worker", "--job", str(job), "--storage", storage, "--study", name,
+                                       "--seed", "5", "--json"], capture_output=True, text=True, env=_env(),
+                            timeout=600)
+    assert worker.returncode == 0, worker.stderr
+    out_text, err = coord.communicate(timeout=600)
+    assert coord.returncode == 0, err.decode()
+    assert f"--study {name}" in err.decode()  # the waiting line names the given study
+    doc = json.loads(out_text)
+    assert doc["study"] == name and json.loads(worker.stdout) == {"study": name, "trials_run": 8}
+    summaries = optuna.get_all_study_summaries(open_storage(storage))
+    assert [s.study_name for s in summaries] == [name]  # no generated name beside it
+    assert out.exists()

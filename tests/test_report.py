@@ -347,3 +347,40 @@ def test_html_renders_in_headless_chromium_and_every_image_decodes(run, tmp_path
     bad = tmp_path / "bad.html"
     bad.write_text("<!doctype html><body><script>console.error('broken');</script></body>")
     assert _console_errors(_chromium(exe, bad, tmp_path)[1])
+
+
+@pytest.mark.parametrize("method, params", [("marina", {"sync_probability": 0.2}),
+                                            ("vr_marina", {"sync_probability": 0.2, "minibatch": 8})])
+def test_seconds_curve_ends_at_the_objectives_seconds_exactly(cancer, method, params):
+    """The report's seconds curve and the search objective are one formula (cost.py): the last
+    point of each seed's curve, after the summary's JSON round trip, equals the objective's
+    seconds for that trajectory bit for bit, downlink and fractional gradient passes included."""
+    from bittune.compressors import make_compressor
+    from bittune.cost import NetworkModel, cost_function
+    from bittune.report import has_seconds, seconds_curve
+    from bittune.simulate import simulate
+    from bittune.tune import trajectory_curves
+
+    # slow links so that every term weighs: 20 ms latency, 0.3 ms per pass, 64 kbit/s up, 256 kbit/s down
+    net = NetworkModel(latency=0.02, uplink_bandwidth=6.4e4, downlink_bandwidth=2.56e5, compute_seconds=3e-4)
+    d = cancer.dim
+    g0 = cancer.full_grad(np.zeros(d))
+    runs = simulate(cancer, method=method, compressor=make_compressor("rand_k:3", d), step_size=0.05,
+                    seeds=[0, 1, 2], target=1e-3 * float(g0 @ g0), max_rounds=300, params=params)
+    summary = json.loads(json.dumps({"network": net.to_dict(), "target": {"kind": "grad_norm_sq", "absolute": 1.0},
+                                     "curves": {"winner": trajectory_curves(runs, loss_gap=False)}}))
+    assert has_seconds(summary)
+    objective = cost_function(net)
+    for run, curve in zip(runs, summary["curves"]["winner"]):
+        secs = seconds_curve(summary, curve)
+        assert secs[-1] == objective(run)  # exact: same operations in the same order
+        # every point by hand (README, "The wall-clock objective"): the server broadcasts 32 d bits
+        # per round; rtol 1e-12: the same sums in another order
+        k = np.asarray(curve["rounds"], float)
+        hand = (k * net.latency + np.asarray(curve["gradient_passes"]) * net.compute_seconds
+                + np.asarray(curve["uplink_bits"]) / net.uplink_bandwidth + 32 * d * k / net.downlink_bandwidth)
+        np.testing.assert_allclose(secs, hand, rtol=1e-12)
+    if method == "vr_marina":  # minibatch rounds: gradient passes are not the round count
+        assert any(r.gradient_passes != r.rounds for r in runs)
+    band = curve_band(summary, "winner", x="seconds")
+    np.testing.assert_array_equal(band["end_bits"], [objective(r) for r in runs])

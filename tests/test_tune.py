@@ -266,6 +266,16 @@ search: {{methods: [gd, diana], compressors: [dither], trials: 30, seeds: 2}}
         rounds, bits = np.array(e["rounds"]), np.array(e["bits_per_worker"])
         np.testing.assert_allclose(e["seconds"], rounds * 0.011 + bits / up + rounds * 32 * 38 / 1e12, rtol=1e-5)
         assert e["mean_seconds"] == float(f"{np.mean(e['seconds']):.4g}")  # reported to 4 significant digits
+        # The report's seconds curves end at the objective's seconds of each validation seed (the config
+        # reports them rounded, hence the tolerance of the line above).
+        from bittune.report import report_data, seconds_curve
+
+        summary = json.loads((tmp_path / f"{name}-config.run" / "summary.json").read_text())
+        np.testing.assert_allclose([seconds_curve(summary, c)[-1] for c in summary["curves"]["winner"]],
+                                   e["seconds"], rtol=1e-5)
+        assert result.report["convergence_seconds"].exists()
+        study = optuna.load_study(study_name=summary["study"], storage=open_storage(summary["storage"]))
+        assert "convergence_seconds" in report_data(summary, study)
         chosen[name] = cfg["method"]
     assert chosen == {"fast": "gd", "metered": "diana"}
 

@@ -222,7 +222,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         raise InputError("--workers-only: needs --storage (a database the workers can reach)")
     result = tune(args.job, output=args.output, trials=args.trials, jobs=args.jobs, seed=args.seed,
                   run_dir=args.run_dir, storage=args.storage, report_dir=args.report, workers_only=args.workers_only,
-                  allow_code=args.allow_code)
+                  allow_code=args.allow_code, study=args.study)
     cfg, exp = result.config, result.config["expected"]
     if args.json:
         _emit_json({"config": str(args.output), "exit_code": result.exit_code, "study": result.study_name,
@@ -374,13 +374,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers-only", action="store_true",
                    help="run no trial here: enqueue the seeds, wait for `bittune worker` processes to spend the "
                         "budget, then select and write the config (needs --storage)")
+    p.add_argument("--study", metavar="NAME",
+                   help="the study's name, for `bittune worker --study NAME` (default: made from the job and data "
+                        "digests); letters, digits, '.', '_', '-'")
     p.add_argument("--json", action="store_true", help="print one JSON summary document on stdout")
     p.set_defaults(func=_cmd_tune)
 
     p = sub.add_parser("worker", help="join a running study (from this or another machine) and run trials")
     p.add_argument("--job", required=True, help="the same job file as the coordinator's (data path may differ)")
     p.add_argument("--storage", required=True, help="the study's storage URL")
-    p.add_argument("--study", required=True, help="the study name (printed by the coordinator)")
+    p.add_argument("--study", required=True, help="the study name (printed by the coordinator, or its --study)")
     p.add_argument("--trials", type=_positive_int, help="global budget (default: the coordinator's)")
     p.add_argument("--seed", type=_nonneg_int, help="this worker's sampler seed (default: fresh entropy)")
     p.add_argument("--index", type=_nonneg_int, default=0, help="a tag recorded on this worker's trials")

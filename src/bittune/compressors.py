@@ -36,7 +36,7 @@ from bittune.errors import InputError
 
 __all__ = [
     "Compressor", "Identity", "RandK", "TopK", "Dither", "Natural", "NaturalDither", "PermK",
-    "COMPRESSORS", "parse_spec", "make_compressor", "PerTrajectory",
+    "COMPRESSORS", "parse_spec", "make_compressor", "PerTrajectory", "elias_omega_bits",
 ]
 
 _FLOAT_BITS = 32  # one float32 value
@@ -45,6 +45,26 @@ _FLOAT_BITS = 32  # one float32 value
 def _ceil_log2(x: int) -> int:
     """ceil(log2 x) for an integer x >= 1, exact (no floating-point log)."""
     return (int(x) - 1).bit_length()
+
+
+def elias_omega_bits(k) -> np.ndarray:
+    """Length in bits of the Elias omega code of each integer k >= 1 (int64 array).
+
+    The code writes k in binary, then the bit length of k minus one in binary, and so on
+    down to 1, and ends with a 0 (Elias 1975, "Universal codeword sets and representations
+    of the integers"; the recursive code QSGD uses, docs/theory.md §1.3): 1 -> 1 bit,
+    2-3 -> 3, 4-7 -> 6, 8-15 -> 7, 16 -> 11. A loop over the recursion depth only (at most
+    6 steps below 2^53), each step on the whole array. Entries k < 1 give 1.
+    """
+    n = np.asarray(k, dtype=np.int64)
+    bits = np.ones(n.shape, dtype=np.int64)  # the closing 0
+    while True:
+        big = n > 1
+        if not big.any():
+            return bits
+        width = np.frexp(n.astype(np.float64))[1].astype(np.int64)  # floor(log2 n) + 1, exact below 2^53
+        bits += np.where(big, width, 0)
+        n = np.where(big, width - 1, 1)
 
 
 class Compressor(ABC):
@@ -189,9 +209,23 @@ class Dither(Compressor):
     Q(x)_j = ||x|| sign(x_j) xi_j / s, xi_j in {l, l+1}, l = floor(s|x_j|/||x||),
     P(l+1) = s|x_j|/||x|| - l (unbiased). Alistarh, Grubic, Li, Tomioka, Vojnovic,
     "QSGD", NeurIPS 2017, Lemma 3.1: omega = min(d/s^2, sqrt(d)/s), expected
-    nnz <= min(d, s(s + sqrt d)). Bits (docs/theory.md §1.2, our model): 32 (norm) + 1
-    (format flag) + the cheaper of dense fixed width, d (1 + ceil(log2(s+1))), and
-    sparse, nnz (1 + ceil(log2 d) + ceil(log2 s)).
+    nnz <= min(d, s(s + sqrt d)).
+
+    Bits, exact per message: the encoder writes whichever of three codings is shortest
+    (docs/theory.md §1.2 and §1.3), behind a prefix-free format header, then the
+    32-bit norm:
+
+    * ``0`` + Elias coding (QSGD section 3): for each non-zero in order, the Elias
+      omega code of the gap to the previous non-zero (1-based position for the first),
+      1 sign bit and the Elias omega code of the level xi_j >= 1 -> 33 + sum over the
+      non-zeros of (omega(gap) + 1 + omega(xi));
+    * ``10`` + dense fixed width: d (1 + ceil(log2(s+1))) -> 34 + that;
+    * ``11`` + sparse fixed width: nnz (1 + ceil(log2 d) + ceil(log2 s)) -> 34 + that.
+
+    So bits = min(fixed, Elias), fixed = 34 + min(dense, sparse). The decoder knows d and
+    s; the transport frames each message, so no count of non-zeros is sent. A zero
+    message costs 33 bits. ``nominal_bits`` (the theory rules' cost per message) is the
+    fixed-width count at the expected-nnz bound: an upper bound on the mean.
     """
 
     name = "dither"
@@ -204,10 +238,24 @@ class Dither(Compressor):
         self.density = min(float(dim), s * (s + math.sqrt(dim)))
         self._dense_bits = dim * (1 + _ceil_log2(s + 1))
         self._bits_per_nz = 1 + _ceil_log2(dim) + _ceil_log2(s)
-        self.nominal_bits = float(self._message_bits(self.density))
+        # Elias omega lengths of every possible gap (1..d) and level (1..s): table lookups
+        # in the round; levels above d (rare, huge s) are coded directly.
+        self._omega = elias_omega_bits(np.arange(max(dim, min(s, 1 << 16)) + 1))
+        self.nominal_bits = float(self._fixed_message_bits(self.density))
 
-    def _message_bits(self, nnz):
-        return _FLOAT_BITS + 1 + np.minimum(self._dense_bits, nnz * self._bits_per_nz)
+    def _fixed_message_bits(self, nnz):
+        return _FLOAT_BITS + 2 + np.minimum(self._dense_bits, nnz * self._bits_per_nz)
+
+    def _elias_message_bits(self, xi: np.ndarray) -> np.ndarray:
+        """33 + sum over non-zeros of omega(gap) + 1 + omega(level), per message of (B, n, d)."""
+        nz = xi > 0
+        pos = np.arange(1, self.dim + 1, dtype=np.int64)
+        last = np.maximum.accumulate(np.where(nz, pos, 0), axis=-1)  # latest non-zero at or before j
+        gap = pos - np.concatenate([np.zeros(last.shape[:-1] + (1,), np.int64), last[..., :-1]], axis=-1)
+        level = xi.astype(np.int64)
+        lev_bits = (self._omega[level] if self.levels < self._omega.size else elias_omega_bits(level))
+        per = self._omega[gap] + 1 + lev_bits
+        return _FLOAT_BITS + 1 + np.sum(np.where(nz, per, 0), axis=-1)
 
     def _apply(self, v, keys, round_):
         s = self.levels
@@ -224,7 +272,8 @@ class Dither(Compressor):
         xi = low + (self._draw(keys, round_, v) < u - low)
         with np.errstate(over="ignore"):  # only if the true value exceeds float64: inf, as it is
             out = np.where(ok, np.sign(v) * (scale * (xi * (q / s))), v)
-        bits = self._message_bits(np.count_nonzero(xi, axis=-1)).astype(np.float64)
+        fixed = self._fixed_message_bits(np.count_nonzero(xi, axis=-1))
+        bits = np.minimum(fixed, self._elias_message_bits(xi)).astype(np.float64)
         return out, bits
 
 

@@ -25,13 +25,21 @@ class NetworkModel:
     compute_seconds: float  # one worker's local gradient
 
     def seconds(self, run) -> float:
-        """Simulated wall-clock seconds of a finished trajectory."""
-        return (run.rounds * self.latency + run.gradient_passes * self.compute_seconds
-                + run.uplink_bits / self.uplink_bandwidth + run.downlink_bits / self.downlink_bandwidth)
+        """Simulated wall-clock seconds of a finished trajectory (what the search minimises)."""
+        return float(self.seconds_at(run.rounds, run.gradient_passes, run.uplink_bits, run.downlink_bits))
 
-    def seconds_curve(self, rounds: np.ndarray, uplink_bits: np.ndarray) -> np.ndarray:
-        """Seconds at the recorded rounds, from the uplink curve (downlink: 32 d per round, dense)."""
-        return rounds * (self.compute_seconds + self.latency) + uplink_bits / self.uplink_bandwidth
+    def seconds_at(self, rounds, passes, uplink_bits, downlink_bits):
+        """The one cost formula: seconds after ``rounds`` rounds that computed ``passes`` full
+        local gradients and sent ``uplink_bits`` / received ``downlink_bits`` per worker.
+        Scalars or arrays (elementwise, the same operations in the same order: a curve's last
+        point equals :meth:`seconds` of its trajectory exactly)."""
+        return (rounds * self.latency + passes * self.compute_seconds
+                + uplink_bits / self.uplink_bandwidth + downlink_bits / self.downlink_bandwidth)
+
+    def seconds_curve(self, rounds, passes, uplink_bits, downlink_bits) -> np.ndarray:
+        """Seconds at recorded rounds from the cumulative curves (a trajectory's or a summary's)."""
+        return np.asarray(self.seconds_at(np.asarray(rounds, dtype=np.float64), np.asarray(passes, np.float64),
+                                          np.asarray(uplink_bits, np.float64), np.asarray(downlink_bits, np.float64)))
 
     def to_dict(self) -> dict:
         return {"latency": self.latency, "uplink_bandwidth": self.uplink_bandwidth,

@@ -26,7 +26,8 @@ import scipy.sparse as sp
 
 from bittune.errors import InputError
 
-__all__ = ["Dataset", "load_data", "binary_labels", "partition", "FORMATS", "SPLITS"]
+__all__ = ["Dataset", "load_data", "binary_labels", "check_learnable", "partition", "FORMATS", "SPLITS",
+           "LABEL_KINDS"]
 
 #: Format name -> file extensions inferred as that format.
 FORMATS = {"svmlight": (".svm", ".svmlight", ".libsvm", ".txt"), "csv": (".csv",), "npz": (".npz",)}
@@ -52,6 +53,13 @@ class Dataset:
     y: np.ndarray
     groups: np.ndarray | None
     source: str
+    label_column: str | None = None  # CSV: the column the labels came from (named in label errors)
+    group_column: str | None = None  # CSV: the column the group ids came from
+
+    @property
+    def label_source(self) -> str:
+        """Where the labels come from, as errors name it: ``f.csv, column 'frost'`` or the file."""
+        return self.source if self.label_column is None else f"{self.source}, column {self.label_column!r}"
 
     @property
     def n_samples(self) -> int:
@@ -278,10 +286,28 @@ def _read_csv(raw: bytes, src: str, label_column: str | None, group_column: str 
     X = np.array(rows, dtype=np.float64).reshape(len(rows), len(fi))
     g = None
     if gi >= 0:
+        _same_ids(groups, f"data.group_column: {src}, column {group_column!r}")
         # Integer group ids sort as numbers (worker order of the column split).
         g = np.array([int(v) for v in groups], dtype=np.int64) if all(
             _INT_S.fullmatch(v) for v in groups) else np.array(groups, dtype=str)
-    return Dataset(X=X, y=np.array(labels, dtype=np.float64), groups=g, source=src)
+    return Dataset(X=X, y=np.array(labels, dtype=np.float64), groups=g, source=src,
+                   label_column=label_column, group_column=group_column)
+
+
+def _same_ids(ids: list[str], where: str) -> None:
+    """Group ids written two ways for one number ('1' and '01', '2' and '2.0') are an error:
+    as text they would make two workers of what is one group, as numbers they would merge
+    two groups the user may have meant apart."""
+    if not ids or not all(_NUM_S.fullmatch(v) for v in ids):
+        return
+    spellings: dict[float, set[str]] = {}
+    for v in set(ids):  # exact ints where possible: 17-digit ids must not merge through float rounding
+        spellings.setdefault(int(v) if _INT_S.fullmatch(v) else float(v), set()).add(v)
+    clash = sorted((sorted(t) for t in spellings.values() if len(t) > 1), key=lambda t: t[0])
+    if clash:
+        shown = "; ".join(" and ".join(repr(v) for v in t) for t in clash[:5])
+        raise InputError(f"{where} writes one group id in several "
+                         f"ways ({shown}); write each id the same way on every row")
 
 
 #: What reading a damaged archive can raise: zipfile (RuntimeError for an
@@ -345,18 +371,83 @@ def _read_npz(p: Path, src: str) -> Dataset:
             more = f" (and {rows.size - 1} more rows)" if rows.size > 1 else ""
             problems.append(f"{src}: {name} row {rows[0]} (0-based) holds NaN or inf{more}")
     _raise(problems)
+    if g is not None and g.dtype.kind in "US":  # text ids: '1' and '01' would be two workers
+        _same_ids([str(v).strip() for v in g.tolist()], f"{src}, array 'groups'")
     return Dataset(X=X, y=y, groups=g, source=src)
 
 
 def binary_labels(y: np.ndarray, *, source: str) -> np.ndarray:
-    """Map labels {0, 1} or {-1, 1} (or one class of either) to float64 -1/+1, 0 -> -1."""
+    """Map labels {0, 1} or {-1, 1} (or one class of either) to float64 -1/+1, 0 -> -1.
+
+    One class alone is mapped here (a worker's share may hold one class);
+    :func:`check_learnable` refuses a whole data set of one class.
+    """
     y = np.asarray(y, dtype=np.float64)
     values = np.unique(y)
     if not (set(values.tolist()) <= {0.0, 1.0} or set(values.tolist()) <= {-1.0, 1.0}):
         shown = ", ".join(f"{v:g}" for v in values[:5]) + (", ..." if values.size > 5 else "")
+        hint = ("; non-integer values: a regression target? (use least_squares)"
+                if np.any(values != np.round(values)) else "")
         raise InputError(f"{source}: labels are not binary (expected {{0, 1}} or {{-1, 1}}); "
-                         f"found {values.size} distinct values: {shown}")
+                         f"found {values.size} distinct values: {shown}{hint}")
     return np.where(y == 1.0, 1.0, -1.0)
+
+
+#: How a model reads the labels (``problems.label_kind``): two classes, integer classes, any real.
+LABEL_KINDS = ("binary", "classes", "real")
+
+
+def check_learnable(dataset: Dataset, *, labels: str) -> None:
+    """Refuse data nothing can be learnt from, before it is split (InputError naming the cause).
+
+    * every feature constant over all rows (all zero included): the rows cannot be told
+      apart, so the model only fits the label mean (a wrong file or wrong columns);
+    * ``labels="binary"`` (logistic models): labels {0, 1} or {-1, 1} and both present;
+    * ``labels="classes"`` (softmax): integer labels, at least 2 classes, and not one
+      class per row (that is an id or a measurement column, not a class column).
+    A worker holding one class only is allowed (``by_label`` splits make such workers
+    on purpose); an empty worker is refused by :func:`partition`.
+    """
+    if labels not in LABEL_KINDS:
+        raise ValueError(f"labels must be one of {LABEL_KINDS}, got {labels!r}")
+    X, n, d, src = dataset.X, dataset.n_samples, dataset.n_features, dataset.source
+    # Every column constant <=> every row equals the first. For CSR this is O(nnz), never a
+    # dense (n, d) or (d,) array: a typo'd index may make d far too large for memory.
+    if dataset.is_sparse:
+        A = X.copy()
+        A.sum_duplicates()
+        A.eliminate_zeros()  # canonical: sorted indices, no explicit zeros
+        k = np.diff(A.indptr)
+        same = bool(np.all(k == k[0]))
+        if same and k[0]:
+            same = bool(np.all(A.indices.reshape(n, k[0]) == A.indices[: k[0]])
+                        and np.all(A.data.reshape(n, k[0]) == A.data[: k[0]]))
+        first = A.data[0] if k[0] and A.indices[0] == 0 else 0.0  # feature 1 on row 1
+        zero = k[0] == 0
+    else:
+        same = bool(np.all(X == X[0]))
+        first, zero = X[0, 0], not np.any(X[0])
+    if same:
+        rows = "the only row" if n == 1 else f"all {n} rows"
+        what = ("is zero on " + rows) if zero else (f"takes one value on {rows} (feature 1 = {first:g})")
+        raise InputError(f"{src}: every one of the {d} features {what}; the rows cannot be told apart, so "
+                         f"there is nothing to learn (wrong data file, or the wrong columns?)")
+    if labels == "real":
+        return
+    y = dataset.y
+    where = dataset.label_source
+    if labels == "binary":
+        values = np.unique(binary_labels(y, source=where))
+        if values.size < 2:
+            raise InputError(f"{where}: every label is {y[0]:g} ({n} rows): a classifier needs both classes "
+                             f"(the wrong label column, or a sample of one class only?)")
+        return
+    from .problems.softmax import class_labels
+
+    _, classes = class_labels(y, source=where)
+    if classes.size == n and n > 2:
+        raise InputError(f"{where}: every row has its own class ({n} classes for {n} rows): the labels look "
+                         f"like ids or measurements, not classes (the wrong label column?)")
 
 
 def partition(
@@ -409,9 +500,16 @@ def partition(
             raise InputError("workers.split: column needs group ids (set data.group_column, "
                              "or store an array 'groups' in the .npz file)")
         values, which = np.unique(g, return_inverse=True)
+        col = f"column {dataset.group_column!r} of {dataset.source}" if dataset.group_column else \
+            f"the groups of {dataset.source}"
+        if values.size == 1 and n_workers > 1:
+            raise InputError(f"workers.split: column: {col} holds one value ({values[0]}) on every row, so the "
+                             f"split makes one worker, not {n_workers} (the wrong group column?)")
         if values.size != n_workers:
+            hint = (f" (every row is its own group: is {col} an id or a measurement?)"
+                    if values.size == n and n > 1 else "")
             raise InputError(f"workers.count: the column split makes one worker per group: "
-                             f"{dataset.source} has {values.size} groups but workers.count is {n_workers}")
+                             f"{dataset.source} has {values.size} groups but workers.count is {n_workers}{hint}")
         parts = [np.flatnonzero(which == k) for k in range(n_workers)]
     parts = [np.sort(np.asarray(p, dtype=np.int64)) for p in parts]
     empty = sum(p.size == 0 for p in parts)

@@ -34,9 +34,9 @@ from optuna.trial import TrialState
 from ._yaml import atomic_write_text
 from .errors import InputError
 
-__all__ = ["write_report", "report_data", "curve_band", "search_history", "step_response",
-           "worker_smoothness", "best_per_method", "importance", "varying_params", "why", "why_sentence",
-           "target_info", "GRID_POINTS", "CAUTION"]
+__all__ = ["write_report", "report_data", "curve_band", "seconds_curve", "has_seconds", "search_history",
+           "step_response", "worker_smoothness", "best_per_method", "importance", "varying_params", "why",
+           "why_sentence", "target_info", "GRID_POINTS", "CAUTION"]
 
 #: Points of the common log-spaced bits grid of the convergence band.
 GRID_POINTS = 200
@@ -58,8 +58,26 @@ def target_info(summary: dict) -> dict:
             "label": "‖∇f‖²", "f_ref": None, "note": ""}
 
 
-def curve_band(summary: dict, which: str, *, points: int = GRID_POINTS) -> dict:
-    """The target's metric against uplink bits per worker over the validation seeds of ``which``.
+def seconds_curve(summary: dict, curve: dict) -> np.ndarray:
+    """Simulated seconds at a summary curve's recorded rounds, by the objective's own formula
+    (cost.NetworkModel.seconds_curve: latency, compute per gradient pass, uplink and downlink
+    bits over their bandwidths), so the last point is the trajectory's objective value."""
+    from .cost import NetworkModel
+
+    net = NetworkModel(**summary["network"])
+    return net.seconds_curve(curve["rounds"], curve["gradient_passes"], curve["uplink_bits"], curve["downlink_bits"])
+
+
+def has_seconds(summary: dict) -> bool:
+    """Whether the run minimised simulated seconds and its curves carry what seconds need."""
+    curves = summary.get("curves", {}).get("winner") or [{}]
+    return bool(summary.get("network")) and "downlink_bits" in curves[0]
+
+
+def curve_band(summary: dict, which: str, *, points: int = GRID_POINTS, x: str = "uplink_bits") -> dict:
+    """The target's metric against uplink bits per worker over the validation seeds of ``which``
+    (``x="seconds"``: against simulated seconds, :func:`seconds_curve`; the keys stay ``bits``
+    and ``end_bits`` for either axis, ``x`` names it).
 
     The metric is ||grad f||^2, or f - f_ref for a loss-gap target (``metric``
     names it; the per-seed ends are ``end_<metric>``).
@@ -74,11 +92,12 @@ def curve_band(summary: dict, which: str, *, points: int = GRID_POINTS) -> dict:
     curves = summary["curves"][which]
     t = target_info(summary)
     end = f"end_{t['curve']}"
-    out = {"which": which, "seeds": len(curves), "target": t["threshold"], "metric": t["kind"],
+    out = {"which": which, "seeds": len(curves), "target": t["threshold"], "metric": t["kind"], "x": x,
            "status": [c.get("status") for c in curves], "end_bits": [], end: []}
     kept = []
     for c in curves:
-        b, g = np.asarray(c["uplink_bits"], float), np.asarray(c[t["curve"]], float)
+        b = seconds_curve(summary, c) if x == "seconds" else np.asarray(c["uplink_bits"], float)
+        g = np.asarray(c[t["curve"]], float)
         keep = (b > 0) & np.isfinite(g) & (g > 0)
         if keep.any():
             kept.append((b[keep], g[keep]))
@@ -285,8 +304,10 @@ def why_sentence(d: dict) -> str:
 
 def report_data(summary: dict, study) -> dict:
     """Every number the figures show (what ``report_data.json`` holds)."""
-    return {"convergence": {w: curve_band(summary, w) for w in ("winner", "baseline")},
-            "history": search_history(study), "step": step_response(study),
+    out = {"convergence": {w: curve_band(summary, w) for w in ("winner", "baseline")}}
+    if has_seconds(summary):
+        out["convergence_seconds"] = {w: curve_band(summary, w, x="seconds") for w in ("winner", "baseline")}
+    return {**out, "history": search_history(study), "step": step_response(study),
             "smoothness": worker_smoothness(summary), "methods": best_per_method(study),
             "importance": importance(study), "why": why(summary, study)}
 
@@ -320,7 +341,8 @@ def _scatter(ax, x, y, mask, *, label: str, hollow: bool = False, color="tab:blu
         ax.scatter(np.asarray(x)[mask], np.asarray(y)[mask], s=22, label=label, **fill, **kw)
 
 
-def _draw_convergence(bands: dict, labels: dict, ylabel: str = "‖∇f‖²") -> bytes:
+def _draw_convergence(bands: dict, labels: dict, ylabel: str = "‖∇f‖²", xlabel: str = "uplink bits per worker"
+                      ) -> bytes:
     fig, ax = _figure(7.5, 4.8)
     for which, color in (("baseline", "tab:gray"), ("winner", "tab:blue")):
         d = bands[which]
@@ -336,8 +358,7 @@ def _draw_convergence(bands: dict, labels: dict, ylabel: str = "‖∇f‖²") -
                    label=f"{labels[which]}: end of each seed")
     target = bands["winner"]["target"]
     ax.axhline(target, color="tab:red", ls="--", lw=1, label=f"target {target:.3g}")
-    ax.set(xscale="log", yscale="log", xlabel="uplink bits per worker", ylabel=ylabel,
-           title="Convergence on fresh seeds")
+    ax.set(xscale="log", yscale="log", xlabel=xlabel, ylabel=ylabel, title="Convergence on fresh seeds")
     return _png(fig, ax, ncols=2)
 
 
@@ -477,6 +498,13 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
             ("img", "convergence", f"{t['label']} against uplink bits per worker, chosen config and theory "
                                    "baseline: line = geometric mean over the fresh seeds, band = min–max, "
                                    "ticks = each seed's end.")]
+    if "convergence_seconds" in figures:
+        net = s["network"]
+        doc.append(("img", "convergence_seconds",
+                    f"{t['label']} against simulated seconds (the search's objective: latency {net['latency']:g} s "
+                    f"+ compute {net['compute_seconds']:.3g} s per gradient pass + uplink bits / "
+                    f"{net['uplink_bandwidth']:g} bit/s + downlink bits / {net['downlink_bandwidth']:g} bit/s per "
+                    "round), same seeds and band as above."))
     h, m = data["history"], data["methods"]
     doc += [("h", "Search"),
             ("p", f"{s['search']['trials']} trials over {', '.join(s['search']['methods'])} on seeds "
@@ -673,6 +701,9 @@ def write_report(run_dir, *, out_dir=None, drift: list[dict] | None = None,
     images = {"convergence": _draw_convergence(data["convergence"], labels, target_info(summary)["label"]),
               "history": _draw_history(data["history"]), "step": _draw_step(data["step"]),
               "smoothness": _draw_smoothness(data["smoothness"])}
+    if "convergence_seconds" in data:
+        images["convergence_seconds"] = _draw_convergence(data["convergence_seconds"], labels,
+                                                          target_info(summary)["label"], "simulated seconds")
     if len(summary["search"]["methods"]) > 1 and data["methods"]["method"]:
         images["methods"] = _draw_methods(data["methods"])
     if data["importance"]["ok"]:
@@ -680,7 +711,7 @@ def write_report(run_dir, *, out_dir=None, drift: list[dict] | None = None,
     paths = {name: out / f"{name}.png" for name in images}
     for name, png in images.items():
         _atomic_write_bytes(paths[name], png)
-    for name in {"methods", "importance"} - set(images):  # a figure an earlier report of this folder drew
+    for name in {"methods", "importance", "convergence_seconds"} - set(images):  # an earlier report's figure
         (out / f"{name}.png").unlink(missing_ok=True)
     title, doc = _document(summary, data, images, drift=drift, extra_sections=extra_sections)
     paths["data"], paths["markdown"], paths["html"] = out / "report_data.json", out / "report.md", out / "report.html"

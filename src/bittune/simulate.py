@@ -53,6 +53,10 @@ class Trajectory:
     #: The stopping metric at x^k: f(x^k) - f_ref for a loss-gap target, else ||grad f(x^k)||^2
     #: (None given: the same array as grad_norm_sq).
     progress: np.ndarray | None = field(default=None, repr=False)
+    #: Cumulative downlink bits and gradient passes per worker to reach x^k (the seconds curve's
+    #: inputs, cost.NetworkModel.seconds_curve); their last entries are downlink_bits, gradient_passes.
+    downlink_curve: np.ndarray | None = field(default=None, repr=False)
+    passes_curve: np.ndarray | None = field(default=None, repr=False)
 
     def __post_init__(self) -> None:
         if self.progress is None:
@@ -156,6 +160,8 @@ def simulate(
     sizes = np.ones(n) if sizes is None else np.asarray(sizes, dtype=np.float64)
     gn_hist = [gn.copy()]
     up_hist = [up.copy()]
+    down_hist = [down.copy()]
+    pass_hist = [passes.copy()]
     loss_log = [(0, active.copy(), loss0.mean(axis=1, dtype=np.float64))]
     out: dict[int, tuple[str, int]] = {}
     final_x = np.empty((B, d))
@@ -215,9 +221,10 @@ def simulate(
         row = np.full(B, np.nan)
         row[active] = gn
         gn_hist.append(row)
-        row = np.full(B, np.nan)
-        row[active] = up[active]
-        up_hist.append(row)
+        for hist, total in ((up_hist, up), (down_hist, down), (pass_hist, passes)):
+            row = np.full(B, np.nan)
+            row[active] = total[active]
+            hist.append(row)
         if monitor is not None:
             verdict = monitor(k + 1, active, up[active], metric)
             if np.ndim(verdict) == 0:
@@ -228,7 +235,7 @@ def simulate(
     with np.errstate(over="ignore", invalid="ignore"):
         loss_end = problem.local_losses(final_x).mean(axis=1)
     gn_hist = np.array(gn_hist)
-    up_hist = np.array(up_hist)
+    up_hist, down_hist, pass_hist = np.array(up_hist), np.array(down_hist), np.array(pass_hist)
     f_hist = None if f_hist is None else np.array(f_hist)
     result = []
     for b in range(B):
@@ -253,6 +260,8 @@ def simulate(
                 loss=np.array([v for _, v in lr], dtype=np.float64),
                 x=final_x[b].copy(),
                 progress=None if f_hist is None else f_hist[: rounds + 1, b] - loss_ref,
+                downlink_curve=down_hist[: rounds + 1, b].copy(),
+                passes_curve=pass_hist[: rounds + 1, b].copy(),
             )
         )
     return result

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import os
+import re
 import threading
 import time
 from contextlib import contextmanager
@@ -33,7 +34,7 @@ from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials
 from .select import GAIN_RESAMPLES, Selection, select
 from .workspace import open_job
 
-__all__ = ["TuneResult", "tune", "study_name", "worker_main"]
+__all__ = ["TuneResult", "tune", "study_name", "check_study_name", "STUDY_NAME", "worker_main"]
 
 
 @dataclass
@@ -55,6 +56,23 @@ def objective_unit(job: Job) -> str:
 def study_name(job: Job) -> str:
     """A study belongs to one job file and one data file."""
     return f"bittune-{job.digest[:10]}-{data_digest(job)[:10]}"
+
+
+#: A study name a scheduler may fix (``tune --study NAME``): letters, digits, '.', '_', '-',
+#: starting with a letter or digit, at most 128 characters (safe in a shell line, a file name
+#: and Optuna's database column; our own rule).
+STUDY_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,127}")
+
+
+def check_study_name(name: str) -> str:
+    """``name`` if it is a sane study name, else InputError naming ``--study``."""
+    if not isinstance(name, str) or not STUDY_NAME.fullmatch(name):
+        shown = repr(name) if not isinstance(name, str) or len(name) <= 40 else repr(name[:37] + "...")
+        why = "is empty" if name == "" else ("is longer than 128 characters" if isinstance(name, str)
+                                             and len(name) > 128 else "has characters other than letters, "
+                                             "digits, '.', '_' and '-' (or does not start with a letter or digit)")
+        raise InputError(f"--study: the study name {why}, got {shown}")
+    return name
 
 
 @dataclass
@@ -139,19 +157,28 @@ def respace(prep: Prepared, overrides: dict) -> Prepared:
 
 
 def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: list[dict] | None = None,
-               workers_only: bool = False):
+               workers_only: bool = False, name: str | None = None):
     """Create or resume the study, enqueue warm-start and theory seeds, run the trials; returns the study.
 
     With ``workers_only`` no trial runs here: ``bittune worker`` processes (on
     this or other machines) run them, and this waits until the budget is spent.
+    ``name`` is the study's name (``tune --study``); None: :func:`study_name`.
     """
     job, spec, space = prep.job, prep.job.search, prep.space
+    key = "storage" if name is None else "--study"
+    name = study_name(job) if name is None else name
+    store = None
+    if "://" in storage_url or Path(storage_url).is_file():  # the study may exist: check before writing
+        store = open_storage(storage_url)
+        try:
+            _check_study(optuna.load_study(study_name=name, storage=store), job, key=key, write=False)
+        except KeyError:
+            pass
     # Inputs are valid and the model passed its check: only now touch the disk.
     run_dir.mkdir(parents=True, exist_ok=True)
-    name = study_name(job)
-    store = open_storage(storage_url)
+    store = store or open_storage(storage_url)
     study = optuna.create_study(study_name=name, storage=store, direction="minimize", load_if_exists=True)
-    _check_study(study, job)
+    _check_study(study, job, key=key)
     if "://" not in storage_url:  # one machine: whatever is RUNNING was left by a killed run
         stale = fail_stale_trials(study)
         if stale:
@@ -216,8 +243,14 @@ def _wait_for_budget(study, budget: int, poll: float = 1.0) -> None:
 
 def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None, seed: int | None = None,
          run_dir=None, storage: str | None = None, report_dir=None, workers_only: bool = False,
-         allow_code: bool = False, progress=None) -> TuneResult:
-    """Tune the job and write the config to ``output`` and the report (default: RUN_DIR/report)."""
+         allow_code: bool = False, progress=None, study: str | None = None) -> TuneResult:
+    """Tune the job and write the config to ``output`` and the report (default: RUN_DIR/report).
+
+    ``study`` fixes the study's name (``--study``, e.g. for a scheduler that starts the
+    workers itself); None makes one from the job and data digests (:func:`study_name`).
+    """
+    if study is not None:
+        check_study_name(study)
     output = Path(output)
     run_dir = Path(run_dir) if run_dir else output.parent / f"{output.stem}.run"
     storage_url = storage or str(run_dir / "study.journal")
@@ -226,7 +259,8 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     log = progress or Progress(total=trials or job0.search.trials, unit=objective_unit(job0))
     prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log, allow_code=allow_code)
     with hold_run_dir(run_dir, storage_url, log):
-        study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only)
+        study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only,
+                           name=study)
         log.note("select: validating the best candidates on fresh seeds")
         selection = select(prep.ws, prep.space, study, prep.network, log=log)
         config = _config_doc(prep, selection, study.study_name, storage_url, output)
@@ -314,9 +348,7 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int | None =
         except KeyError:
             raise InputError(f"--study: no study named {name!r} in {mask_url(storage_url)}") from None
         attrs = probe.user_attrs
-        if attrs.get("job_digest") not in (None, job.digest):
-            raise InputError(f"--study: study {name!r} belongs to another job file (digest "
-                             f"{attrs['job_digest'][:12]}, this job {job.digest[:12]})")
+        _check_study(probe, job, key="--study", write=False)  # this job file and this data
         if "constants" not in attrs:
             raise InputError(f"--study: study {name!r} has no probe constants yet (start the coordinator first)")
         overrides = attrs.get("search_overrides", {}) if overrides is None else overrides
@@ -347,6 +379,22 @@ SUMMARY = "summary.json"
 CURVE_POINTS = 400
 
 
+def trajectory_curves(runs, *, loss_gap: bool) -> list[dict]:
+    """Each run's curves as the summary keeps them: at most CURVE_POINTS rounds (evenly thinned,
+    first and last kept), with the cumulative uplink and downlink bits and gradient passes the
+    report's seconds curves are computed from (cost.NetworkModel.seconds_curve)."""
+    out = []
+    for r in runs:
+        keep = np.unique(np.linspace(0, len(r.grad_norm_sq) - 1, min(CURVE_POINTS, len(r.grad_norm_sq)))
+                         .round().astype(int))
+        out.append({"seed": r.seed, "status": r.status, "rounds": keep.tolist(),
+                    "uplink_bits": r.uplink_curve[keep].tolist(), "downlink_bits": r.downlink_curve[keep].tolist(),
+                    "gradient_passes": r.passes_curve[keep].tolist(), "grad_norm_sq": r.grad_norm_sq[keep].tolist()})
+        if loss_gap:
+            out[-1]["loss_gap"] = r.progress[keep].tolist()  # f(x^k) - f_ref
+    return out
+
+
 def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Selection, study: str,
                   storage: str, extra: dict | None = None) -> Path:
     """Everything the report needs that is not in the study: one JSON file in the run folder."""
@@ -358,15 +406,7 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
     ws, job, constants, report, space = prep.ws, prep.job, prep.constants, prep.report, prep.space
 
     def curves(evaluation):
-        out = []
-        for r in evaluation.runs:
-            keep = np.unique(np.linspace(0, len(r.grad_norm_sq) - 1, min(CURVE_POINTS, len(r.grad_norm_sq)))
-                             .round().astype(int))
-            out.append({"seed": r.seed, "status": r.status, "rounds": keep.tolist(),
-                        "uplink_bits": r.uplink_curve[keep].tolist(), "grad_norm_sq": r.grad_norm_sq[keep].tolist()})
-            if ws.reference is not None:
-                out[-1]["loss_gap"] = r.progress[keep].tolist()  # f(x^k) - f_ref
-        return out
+        return trajectory_curves(evaluation.runs, loss_gap=ws.reference is not None)
 
     rows = []
     for method in space.methods:
@@ -402,6 +442,8 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
         },
         "curves": {"winner": curves(selection.winner), "baseline": curves(selection.baseline),
                    **({} if selection.gd is None else {"gd": curves(selection.gd)})},
+        # objective seconds: the network model the search costed trials with (the report's seconds curves)
+        "network": None if prep.network is None else prep.network.to_dict(),
         **(extra or {}),
     }
     path = Path(run_dir) / SUMMARY
@@ -409,15 +451,20 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
     return path
 
 
-def _check_study(study: optuna.Study, job: Job) -> None:
+def _check_study(study: optuna.Study, job: Job, *, key: str = "storage", write: bool = True) -> None:
+    """A study is resumed or joined only by the job file and data it was made for (exit 2 otherwise,
+    naming ``key``: ``--study`` when the user chose the name); ``write`` records both digests."""
     if study.direction != optuna.study.StudyDirection.MINIMIZE:
-        raise InputError(f"storage: study {study.study_name!r} exists and maximises; bittune's studies minimise bits")
-    digest = study.user_attrs.get("job_digest")
-    if digest is None:
-        study.set_user_attr("job_digest", job.digest)
-    elif digest != job.digest:
-        raise InputError(f"storage: study {study.study_name!r} belongs to another job file "
-                         f"(digest {digest[:12]}, this job {job.digest[:12]})")
+        raise InputError(f"{key}: study {study.study_name!r} exists and maximises; bittune's studies minimise bits")
+    hint = "; choose another --study name" if key == "--study" else ""
+    for attr, mine, what in (("job_digest", job.digest, "job file"), ("data_digest", data_digest(job), "data file")):
+        digest = study.user_attrs.get(attr)
+        if digest is None:
+            if write:
+                study.set_user_attr(attr, mine)
+        elif digest != mine:
+            raise InputError(f"{key}: study {study.study_name!r} exists and belongs to another {what} "
+                             f"(digest {digest[:12]}, this job's {mine[:12]}){hint}")
 
 
 def _relative(path, base: Path) -> str:

@@ -19,10 +19,10 @@ from typing import Any
 
 import numpy as np
 
-from .data import Dataset, _quiet_array_header, load_data, partition
+from .data import Dataset, _quiet_array_header, check_learnable, load_data, partition
 from .errors import InputError
 from .job import Job
-from .problems import Problem, build_problem
+from .problems import Problem, build_problem, label_kind
 from .simulate import absolute_target
 
 __all__ = ["Workspace", "open_job", "reference_loss", "model_convexity", "REFERENCE_OPTIONS"]
@@ -110,6 +110,9 @@ def open_job(job: Job, *, reference: dict | None = None) -> Workspace:
     spec = job.data
     dataset = load_data(spec.path, format=spec.format, label_column=spec.label_column,
                         group_column=spec.group_column)
+    # Degenerate data (constant features, one class, a label column that holds no classes)
+    # stop here, before the split, for every command.
+    check_learnable(dataset, labels=label_kind(job.model, job.model_options))
     w = job.workers
     try:
         parts = partition(dataset, n_workers=w.count, split=w.split, seed=w.seed,

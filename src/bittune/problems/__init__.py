@@ -21,7 +21,7 @@ __all__ = [
     "Problem", "LogisticNonconvex", "LeastSquares", "Softmax", "MLP", "PluginProblem",
     "MODELS", "MODEL_NAMES", "MODEL_OPTIONS", "PLUGIN",
     "problem_from_arrays", "build_problem", "model_options", "load_plugin", "split_plugin_spec", "default_start",
-    "class_labels",
+    "class_labels", "label_kind",
 ]
 
 MODELS: dict[str, type[Problem]] = {
@@ -73,6 +73,15 @@ def model_options(model: str, options: Mapping[str, Any] | None) -> dict[str, An
     if problems:
         raise InputError(problems)
     return out
+
+
+def label_kind(model: str, options: Mapping[str, Any] | None = None) -> str:
+    """How ``model`` reads the labels: ``binary`` (logistic losses), ``classes`` (softmax) or
+    ``real`` (least squares, a squared-loss MLP, a plugin: raw values); see ``data.LABEL_KINDS``."""
+    opts = model_options(model, options)
+    if model == LogisticNonconvex.name or (model == MLP.name and opts["loss"] == "logistic"):
+        return "binary"
+    return "classes" if model == Softmax.name else "real"
 
 
 def problem_from_arrays(
@@ -141,10 +150,12 @@ def build_problem(
     opts = model_options(model, options)
     y = dataset.y
     classes = None
-    if model == LogisticNonconvex.name or (model == MLP.name and opts["loss"] == "logistic"):
-        y = binary_labels(y, source=dataset.source)
-    elif model == Softmax.name:
-        _, classes = class_labels(y, source=dataset.source)  # over all rows: every worker has C classes
+    kind = label_kind(model, opts)
+    where = getattr(dataset, "label_source", dataset.source)
+    if kind == "binary":
+        y = binary_labels(y, source=where)
+    elif kind == "classes":
+        _, classes = class_labels(y, source=where)  # over all rows: every worker has C classes
     X = dataset.X
     rows = [X[np.asarray(idx)] for idx in parts]
     targets = [y[np.asarray(idx)] for idx in parts]
