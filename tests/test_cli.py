@@ -188,11 +188,12 @@ def test_tune_on_degenerate_data_exits_2_and_writes_nothing(tmp_path):
     (tmp_path / "one.svm").write_text(rows + "\n")
     (tmp_path / "job.yaml").write_text("data: one.svm\nmodel: logistic_nonconvex\nworkers: {count: 2, split: iid}\n"
                                        "target: {grad_norm_sq: 1e-3}\nbudget: {max_rounds: 100}\n")
-    before = sorted(p.name for p in tmp_path.iterdir())
+    (tmp_path / "out").mkdir()  # outputs need an existing folder (README, "What bittune checks")
+    before = sorted(str(p.relative_to(tmp_path)) for p in tmp_path.rglob("*"))
     proc = subprocess.run([sys.executable, "-m", "bittune.cli", "tune", str(tmp_path / "job.yaml"),
                            "-o", str(tmp_path / "out" / "config.yaml"), "--trials", "2"],
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 2, proc.stderr
     assert "one.svm: every label is 1 (8 rows): a classifier needs both classes" in proc.stderr
     assert proc.stdout == ""
-    assert sorted(p.name for p in tmp_path.iterdir()) == before  # no out/, no config, no run folder
+    assert sorted(str(p.relative_to(tmp_path)) for p in tmp_path.rglob("*")) == before  # no config, no run folder

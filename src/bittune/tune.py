@@ -156,6 +156,22 @@ def respace(prep: Prepared, overrides: dict) -> Prepared:
     return Prepared(job, prep.ws, prep.constants, prep.report, space, overrides, prep.network)
 
 
+def check_existing_study(job: Job, storage_url: str, name: str | None = None):
+    """Refuse (exit 2) a study of that name (``tune --study``; None: :func:`study_name`) that exists
+    for another job or data file, before anything is written; returns the opened storage, or None
+    when there is nothing to check yet (no journal file)."""
+    key = "storage" if name is None else "--study"
+    name = study_name(job) if name is None else name
+    if not ("://" in storage_url or Path(storage_url).is_file()):
+        return None
+    store = open_storage(storage_url)
+    try:
+        _check_study(optuna.load_study(study_name=name, storage=store), job, key=key, write=False)
+    except KeyError:
+        pass
+    return store
+
+
 def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: list[dict] | None = None,
                workers_only: bool = False, name: str | None = None):
     """Create or resume the study, enqueue warm-start and theory seeds, run the trials; returns the study.
@@ -166,14 +182,8 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
     """
     job, spec, space = prep.job, prep.job.search, prep.space
     key = "storage" if name is None else "--study"
+    store = check_existing_study(job, storage_url, name)
     name = study_name(job) if name is None else name
-    store = None
-    if "://" in storage_url or Path(storage_url).is_file():  # the study may exist: check before writing
-        store = open_storage(storage_url)
-        try:
-            _check_study(optuna.load_study(study_name=name, storage=store), job, key=key, write=False)
-        except KeyError:
-            pass
     # Inputs are valid and the model passed its check: only now touch the disk.
     run_dir.mkdir(parents=True, exist_ok=True)
     store = store or open_storage(storage_url)
@@ -258,6 +268,7 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     check_paths(job0, output=output, run_dir=run_dir, report_dir=report_dir, storage_url=storage_url)
     log = progress or Progress(total=trials or job0.search.trials, unit=objective_unit(job0))
     prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log, allow_code=allow_code)
+    check_existing_study(prep.job, storage_url, study)  # before the run folder's lock file is made
     with hold_run_dir(run_dir, storage_url, log):
         study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only,
                            name=study)
