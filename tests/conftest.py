@@ -74,3 +74,21 @@ def wait_for(condition, *, what: str, timeout: float = 300.0, every: float = 0.1
         if time.monotonic() > deadline:
             pytest.fail(f"{what}: did not happen within {timeout:.0f} s")
         time.sleep(every)
+
+
+def journal_study(run_dir):
+    """The study in a run folder's journal, read through optuna; None before the study exists."""
+    from pathlib import Path
+
+    import optuna
+
+    from bittune.search import open_storage
+
+    journal = Path(run_dir) / "study.journal"
+    if not journal.exists():
+        return None
+    storage = open_storage(str(journal))
+    summaries = optuna.get_all_study_summaries(storage)
+    if not summaries:
+        return None
+    return optuna.load_study(study_name=summaries[0].study_name, storage=storage)

@@ -26,6 +26,7 @@ from optuna.trial import TrialState
 from bittune.compressors import PerTrajectory, make_compressor
 from bittune.search import Objective, Space, open_storage, run_trials
 from bittune.simulate import absolute_target, simulate
+from conftest import journal_study
 
 ROOT = Path(__file__).resolve().parents[1]
 RTOL = 1e-9  # see the module docstring
@@ -161,15 +162,10 @@ def test_a_pruned_trial_leaves_its_batch_mates_running(cancer):
 
 
 def _complete(run_dir: Path) -> dict[int, float]:
-    journal = run_dir / "study.journal"
-    if not journal.exists():
-        return {}
     try:
-        storage = open_storage(str(journal))
-        summaries = optuna.get_all_study_summaries(storage)
-        if not summaries:
+        study = journal_study(run_dir)
+        if study is None:
             return {}
-        study = optuna.load_study(study_name=summaries[0].study_name, storage=storage)
         return {t.number: t.value for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))}
     except Exception:  # the journal may be mid-write while the run goes on; read again later
         return {}

@@ -16,35 +16,24 @@ from optuna.trial import TrialState
 
 from bittune.config import load_config
 from bittune.search import open_storage
-from conftest import wait_for
+from conftest import journal_study, wait_for
 
 ROOT = Path(__file__).resolve().parents[1]
 PREVIOUS = "bittune_config: 1\nmethod: gd\ncompressor: {name: identity}\nstep_size: 0.01\n"
 
 
 def _count(run_dir: Path) -> int | None:
-    """Finished (complete or pruned) trials in the run's journal, read through optuna; None
-    before the study exists."""
-    journal = run_dir / "study.journal"
-    if not journal.exists():
+    """Finished (complete or pruned) trials in the run's journal; None before the study exists."""
+    study = journal_study(run_dir)
+    if study is None:
         return None
-    storage = open_storage(str(journal))
-    summaries = optuna.get_all_study_summaries(storage)
-    if not summaries:
-        return None
-    study = optuna.load_study(study_name=summaries[0].study_name, storage=storage)
     return len(study.get_trials(deepcopy=False, states=(TrialState.COMPLETE, TrialState.PRUNED)))
 
 
 def _finished(run_dir: Path) -> dict[int, float]:
-    journal = run_dir / "study.journal"
-    if not journal.exists():
+    study = journal_study(run_dir)
+    if study is None:
         return {}
-    storage = open_storage(str(journal))
-    summaries = optuna.get_all_study_summaries(storage)
-    if not summaries:
-        return {}
-    study = optuna.load_study(study_name=summaries[0].study_name, storage=storage)
     return {t.number: t.value for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))}
 
 
