@@ -31,8 +31,8 @@ from .errors import EXIT, InputError
 from .search import SYNCED, Candidate, open_storage
 from .select import Evaluation, evaluate, select
 from .progress import Progress
-from .tune import (_config_doc, _plain, check_paths, hold_run_dir, objective_unit, prepare, respace, run_search,
-                   trial_counts, write_summary)
+from .tune import (_config_doc, _plain, check_existing_study, check_paths, hold_run_dir, objective_unit, prepare,
+                   respace, run_search, trial_counts, write_summary)
 
 __all__ = ["RetuneResult", "retune", "drift_table", "decide", "HISTORY_FIELDS", "history_rows"]
 
@@ -246,8 +246,9 @@ def _retune(job_path, *, previous, output, lock, trials: int | None = None, jobs
     prep = respace(first, overrides)
     log.total, log.unit = prep.job.search.trials, objective_unit(prep.job)
     warm = _warm_params(prep.space, warm_cands)
+    store = check_existing_study(prep.job, storage_url)  # before the run folder's lock file is made
     with lock(log):
-        study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, warm=warm)
+        study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, warm=warm, store=store)
         log.note("select: validating tonight's best and the previous config on the same fresh seeds")
         selection = select(ws, prep.space, study, prep.network, log=log)
         if new_problem:

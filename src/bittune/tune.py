@@ -173,16 +173,16 @@ def check_existing_study(job: Job, storage_url: str, name: str | None = None):
 
 
 def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: list[dict] | None = None,
-               workers_only: bool = False, name: str | None = None):
+               workers_only: bool = False, name: str | None = None, store=None):
     """Create or resume the study, enqueue warm-start and theory seeds, run the trials; returns the study.
 
     With ``workers_only`` no trial runs here: ``bittune worker`` processes (on
     this or other machines) run them, and this waits until the budget is spent.
-    ``name`` is the study's name (``tune --study``); None: :func:`study_name`.
+    ``name`` is the study's name (``tune --study``); None: :func:`study_name`. ``store``: the
+    storage :func:`check_existing_study` opened (callers check before they lock the run folder).
     """
     job, spec, space = prep.job, prep.job.search, prep.space
     key = "storage" if name is None else "--study"
-    store = check_existing_study(job, storage_url, name)
     name = study_name(job) if name is None else name
     # Inputs are valid and the model passed its check: only now touch the disk.
     run_dir.mkdir(parents=True, exist_ok=True)
@@ -268,10 +268,10 @@ def tune(job_path, *, output, trials: int | None = None, jobs: int | None = None
     check_paths(job0, output=output, run_dir=run_dir, report_dir=report_dir, storage_url=storage_url)
     log = progress or Progress(total=trials or job0.search.trials, unit=objective_unit(job0))
     prep = prepare(job_path, {"trials": trials, "jobs": jobs, "seed": seed}, log, allow_code=allow_code)
-    check_existing_study(prep.job, storage_url, study)  # before the run folder's lock file is made
+    store = check_existing_study(prep.job, storage_url, study)  # before the run folder's lock file is made
     with hold_run_dir(run_dir, storage_url, log):
         study = run_search(prep, run_dir=run_dir, storage_url=storage_url, log=log, workers_only=workers_only,
-                           name=study)
+                           name=study, store=store)
         log.note("select: validating the best candidates on fresh seeds")
         selection = select(prep.ws, prep.space, study, prep.network, log=log)
         config = _config_doc(prep, selection, study.study_name, storage_url, output)
