@@ -31,6 +31,7 @@ from optuna.storages.journal import JournalFileBackend
 from optuna.trial import TrialState
 
 from .compressors import COMPRESSORS, make_compressor
+from .methods import dense_bits
 from .constants import Constants
 from .cost import cost_function
 from .simulate import Trajectory, simulate
@@ -378,8 +379,8 @@ class Objective:
             if cand.minibatch is not None:
                 p = cand.sync_probability
                 passes = p + (1.0 - p) * float(np.mean(2.0 * cand.minibatch / self.problem.worker_sizes))
-            per_round = passes * net.compute_seconds + net.latency + 32.0 * d / net.downlink_bandwidth
-            cost_at = lambda k, bits: k * per_round + bits / net.uplink_bandwidth  # noqa: E731
+            # The objective's one seconds formula, with the dense broadcast of every round.
+            cost_at = lambda k, bits: net.seconds_at(k, passes * k, bits, dense_bits(d) * k)  # noqa: E731
         # Checkpoints start at the cost of four dense rounds and grow geometrically.
         monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at,
                                 start=cost_at(4, 4 * 32.0 * d))
@@ -419,10 +420,8 @@ class Objective:
         bits = (self.max_rounds + 1) * d * (33 + math.ceil(math.log2(max(d, 2))))
         if self.network is None:
             return float(bits)
-        net = self.network
         rounds = self.max_rounds + 1
-        return float(rounds * (2.0 * net.compute_seconds + net.latency + 32.0 * d / net.downlink_bandwidth)
-                     + bits / net.uplink_bandwidth)
+        return float(self.network.seconds_at(rounds, 2.0 * rounds, bits, dense_bits(d) * rounds))
 
     def _cap(self, study: optuna.Study) -> float | None:
         """Cost cap: bits_cap_factor x the best all-seeds-reached value so far (and the job's bit cap,
