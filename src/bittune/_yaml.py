@@ -173,7 +173,7 @@ def atomic_write_text(path: str | os.PathLike, text: str) -> None:
     """
     target = Path(path)
     try:
-        _atomic_write(target, text)
+        atomic_write_bytes(target, text)
     except OSError as exc:
         if exc.errno in NO_SPACE:
             from .errors import WriteError
@@ -187,11 +187,14 @@ def atomic_write_text(path: str | os.PathLike, text: str) -> None:
 NO_SPACE = (errno.ENOSPC, errno.EDQUOT, errno.EROFS)
 
 
-def _atomic_write(target: Path, text: str) -> None:
+def atomic_write_bytes(target: Path, data: bytes | str) -> None:
+    """Temp file in the same folder, fsync, ``os.replace`` (text as UTF-8); on any failure the temp
+    file is removed and the OSError propagates (:func:`atomic_write_text` names the file for a full disk)."""
+    target = Path(target)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
     try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data.encode("utf-8") if isinstance(data, str) else data)
             fh.flush()
             os.fsync(fh.fileno())
         try:

@@ -21,9 +21,7 @@ import html
 import io
 import json
 import math
-import os
 import re
-import tempfile
 import warnings
 from pathlib import Path
 
@@ -31,7 +29,7 @@ import numpy as np
 import optuna
 from optuna.trial import TrialState
 
-from ._yaml import atomic_write_text
+from ._yaml import atomic_write_bytes, atomic_write_text
 from .errors import InputError
 
 __all__ = ["write_report", "report_data", "curve_band", "seconds_curve", "has_seconds", "search_history",
@@ -651,21 +649,6 @@ def _jsonable(x):
     return None if isinstance(x, float) and not math.isfinite(x) else x
 
 
-def _atomic_write_bytes(path: Path, data: bytes) -> None:
-    """Temp file in the same folder, fsync, os.replace (as ``atomic_write_text`` does for text)."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-
-
 def _load(run_dir: Path) -> tuple[dict, optuna.Study]:
     from .search import open_storage
 
@@ -710,7 +693,7 @@ def write_report(run_dir, *, out_dir=None, drift: list[dict] | None = None,
         images["importance"] = _draw_importance(data["importance"])
     paths = {name: out / f"{name}.png" for name in images}
     for name, png in images.items():
-        _atomic_write_bytes(paths[name], png)
+        atomic_write_bytes(paths[name], png)
     for name in {"methods", "importance", "convergence_seconds"} - set(images):  # an earlier report's figure
         (out / f"{name}.png").unlink(missing_ok=True)
     title, doc = _document(summary, data, images, drift=drift, extra_sections=extra_sections)
