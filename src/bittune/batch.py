@@ -105,8 +105,8 @@ def _heartbeats(study, trials):
 def run_batch(study: optuna.Study, objective, trials) -> int:
     """Evaluate the asked ``trials`` (grouped into engine batches) and tell Optuna; returns how
     many finished (complete or pruned). A numerical fault in an engine batch re-runs its trials
-    one by one and fails only those that fault alone (reason recorded), never the study; any other error fails every trial still running here
-    and propagates, as ``optimize()`` does."""
+    one by one and fails only those that fault alone (reason recorded), never the study; any
+    other error fails every trial still running here and propagates, as ``optimize()`` does."""
     try:
         cap = objective._cap(study)
         plans = [objective.plan(t, cap) for t in trials]
