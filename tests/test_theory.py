@@ -611,3 +611,31 @@ def test_diana_with_identity_and_full_shift_is_gradient_descent(tiny):
     runs = simulate(problem, method="diana", compressor=make_compressor("identity", problem.dim), step_size=gamma,
                     seeds=[0], target=0.0, max_rounds=K, params={"shift_rate": 1.0})
     assert runs[0].grad_norm_sq[: K + 1] == pytest.approx(_numpy_gd(rows, targets, 0.05, gamma, K), rel=1e-9)
+
+
+def test_delta_star_bound_holds_when_the_user_bound_is_the_exact_inf_f():
+    """Delta* is bounded with each worker's own lower bound, not with probe.lower_bound.
+
+    Worked example [DER] (docs/theory.md §2.2), shifted by a constant: f_1 = x^2 - 2x,
+    f_2 = x^2 + 2x, so f = x^2, f_inf = 0, f_i^inf = -1 and Delta* = f_inf - mean_i f_i^inf = 1
+    (closed form). From x0 = 0.5 with lower_bound 0 (the exact inf f), Delta0 = 0.25 < Delta*;
+    the bound must stay >= 1: f(x0) - mean_i inf f_i = 0.25 + 1 = 1.25.
+    """
+    from bittune.probe import estimate_constants
+    from bittune.problems.quadratic import Quadratic
+
+    q = Quadratic(np.array([[[2.0]], [[2.0]]]), np.array([[-2.0], [2.0]]))
+    assert q.loss_lower_bound() == pytest.approx(0.0, abs=1e-12)  # inf x^2
+    assert q.worker_loss_lower_bound() == pytest.approx(-1.0, abs=1e-12)  # inf x^2 -/+ 2x = -1 each
+    consts, _ = estimate_constants(q, x0=np.array([0.5]), lower_bound=0.0, rng=0)
+    assert consts.delta0 == pytest.approx(0.25, rel=1e-12)  # Delta0 < Delta* = 1 here
+    assert consts.delta_star_bound == pytest.approx(1.25, rel=1e-12)
+    assert consts.delta_star_bound >= 1.0
+    # The DCGD rule takes the larger bound: its step is smaller than with Delta0 in its place
+    # (C grows with Delta*: docs/theory.md §2.2). Dithering keeps omega > 0 at d = 1.
+    comp = make_compressor("dither:1", 1)
+    assert comp.omega > 0
+    sound = theory_point("dcgd", comp, consts, target=1e-4)
+    naive = theory_point("dcgd", comp, dataclasses.replace(consts, delta_star0=None), target=1e-4)
+    assert sound.step_size < naive.step_size
+    assert sound.predicted_rounds > naive.predicted_rounds

@@ -41,6 +41,10 @@ class Constants:
     #: When set, the theory rules that have a PL form use it (docs/theory.md §2.7, §2.9).
     pl_mu: float | None = None
     extra: dict = field(default_factory=dict)  # e.g. measured contraction of Top-K
+    #: f(x0) - mean_i (a lower bound of f_i): an upper bound on Delta* (docs/theory.md §2.2) from the
+    #: model's per-worker bounds, never from the user's ``probe.lower_bound`` (which bounds f only).
+    #: None for constants built by hand or saved before it existed: Delta0 stands in.
+    delta_star0: float | None = None
 
     @property
     def L_am(self) -> float:
@@ -56,8 +60,9 @@ class Constants:
 
     @property
     def delta_star_bound(self) -> float:
-        """Upper bound on Delta* = f_inf - (1/n) sum_i f_i^inf: f_inf <= f(x0) and f_i >= lower bound."""
-        return float(self.delta0)
+        """Upper bound on Delta* = f_inf - (1/n) sum_i f_i^inf: f_inf <= f(x0) and f_i >= the model's
+        per-worker lower bound (``delta_star0``; Delta0 when that was not measured)."""
+        return float(self.delta0 if self.delta_star0 is None else self.delta_star0)
 
     def to_dict(self) -> dict:
         """Plain types only (for YAML/JSON): arrays become lists."""

@@ -500,6 +500,9 @@ def estimate_constants(
         raise ValueError(f"lower_bound must be <= f(x0) = {f0:.6g}, got {lower:.6g}")
     g0 = grads[0]
     gbar = g0.mean(axis=0)
+    # Delta*'s bound needs a bound on each f_i: the model's, whatever probe.lower_bound says.
+    worker_lower = getattr(problem, "worker_loss_lower_bound", None)
+    worker_lower = None if worker_lower is None else float(worker_lower())
     constants = Constants(
         n_workers=n, dim=d, L=float(est["L"]), L_workers=est["L_workers"], L_plus=float(est["L_plus"]),
         L_pm=float(est["L_pm"]), delta0=f0 - lower, grad_sq0=float(gbar @ gbar),
@@ -508,6 +511,7 @@ def estimate_constants(
         bound_L=None if bounds is None else bounds[1], bound_L_workers=None if bounds is None else bounds[0],
         L_sample=sample_L, samples_per_worker=None if sizes is None else float(sizes.mean()),
         min_samples_per_worker=None if sizes is None else int(sizes.min()),
+        delta_star0=None if worker_lower is None else f0 - worker_lower,
     )
     report = ProbeReport(points=pts, oracle_calls=oracle.calls, oracle_points=oracle.rows,
                          seconds=time.perf_counter() - start, step_size=float(step), step_source=source,

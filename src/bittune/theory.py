@@ -115,7 +115,10 @@ def dcgd_rule(compressor: Compressor, constants: Constants, *, target: float) ->
                            p.predicted_bits_per_worker, p.source, "omega = 0: DCGD is GD")
     A = omega * c.L_max / c.n_workers
     B = 1.0
-    C = 2.0 * omega * c.L_max * c.delta_star_bound / c.n_workers
+    delta_star, note = c.delta_star_bound, ""
+    if not math.isfinite(delta_star):  # a worker's loss unbounded below (only test quadratics)
+        delta_star, note = c.delta0, "Delta* unbounded by the model: Delta0 stands in (no guarantee)"
+    C = 2.0 * omega * c.L_max * delta_star / c.n_workers
     rounds = _rounds(12.0 * c.delta0 * c.L * max(B, 12.0 * c.delta0 * A / eps, 2.0 * C / eps), eps)
     steps = [1.0 / (c.L * B)]
     if A > 0:
@@ -123,7 +126,7 @@ def dcgd_rule(compressor: Compressor, constants: Constants, *, target: float) ->
     if C > 0:
         steps.append(eps / (2.0 * c.L * C))
     return _point("dcgd", compressor, min(steps), rounds, rounds * compressor.nominal_bits,
-                  "Khaled & Richtarik 2020, Thm 2 / Cor. 1 (from memory)")
+                  "Khaled & Richtarik 2020, Thm 2 / Cor. 1 (from memory)", note=note)
 
 
 def diana_rule(compressor: Compressor, constants: Constants, *, target: float) -> TheoryPoint:

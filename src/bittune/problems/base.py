@@ -217,3 +217,8 @@ class Problem(ABC):
     def loss_lower_bound(self) -> float:
         """A lower bound on f (every model here has non-negative loss)."""
         return 0.0
+
+    def worker_loss_lower_bound(self) -> float:
+        """Mean over workers of a lower bound on each f_i (Delta*'s bound, docs/theory.md §2.2):
+        every f_i here is non-negative."""
+        return 0.0

@@ -275,3 +275,7 @@ class PluginProblem:
         low = self._numbers("lower_bound")
         return 0.0 if low is None else float(low.mean())
 
+    def worker_loss_lower_bound(self) -> float:
+        """The same mean: each model's ``lower_bound`` bounds its own worker's loss."""
+        return self.loss_lower_bound()
+

@@ -109,3 +109,9 @@ class Quadratic:
         if np.any(np.abs(c[flat]) > np.sqrt(eps) * max(np.linalg.norm(bbar), np.finfo(float).tiny)):
             return -np.inf
         return float(-0.5 * np.sum(c[~flat] ** 2 / lam[~flat]))
+
+    def worker_loss_lower_bound(self) -> float:
+        """mean_i inf f_i, each by the rule of :meth:`loss_lower_bound` on (H_i, b_i); ``-inf`` when
+        some worker is unbounded below (then Delta* has no finite bound from the model)."""
+        return float(np.mean([Quadratic(self.H[i:i + 1], self.b[i:i + 1]).loss_lower_bound()
+                              for i in range(self.n_workers)]))
