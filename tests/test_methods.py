@@ -110,7 +110,7 @@ def test_batch_equals_each_trajectory_alone(cancer, method, spec, params):
 
 
 def test_marina_coin_is_shared_by_workers_and_bits_add_up(cancer):
-    d, n = cancer.dim, cancer.n_workers
+    d = cancer.dim
     run = _run(cancer, "marina", "rand_k:5", step=0.1, rounds=300, sync_probability=0.3)[0]
     per_round = np.diff(run.uplink_curve)
     # Every round is either a dense sync (32 d) or a Rand-K message (32 K) for all
