@@ -11,9 +11,8 @@ memory); docs/theory.md §2.5.
 
 Both gradients of a difference are taken on the same rows: one call of the
 problem's minibatch oracle (``weighted_grads``) on the stacked points
-(x^{k+1}, x^k) with the row counts / b' as weights. Row draws come from
-(trajectory key, round, STREAM["minibatch"], worker, slot), so a trajectory
-draws the same rows alone or in any batch, with any mix of b' in it.
+(x^{k+1}, x^k) with the row counts / b' as weights (``_minibatch.minibatch_weights``:
+a trajectory draws the same rows alone or in any batch, with any mix of b' in it).
 
 Cost: a compressed round computes 2 b' per-sample gradients per worker, a
 synchronising round m_i (reported by :meth:`gradient_evals`, counted by the
@@ -27,6 +26,7 @@ from __future__ import annotations
 import numpy as np
 
 from .._random import STREAM, uniform
+from ._minibatch import minibatch_weights
 from .base import Method
 
 __all__ = ["VRMARINA", "default_minibatch"]
@@ -83,18 +83,7 @@ class VRMARINA(Method):
             return self.state["g"].copy(), self._dense(grads)
         sync = uniform(keys, round_, STREAM["coin"], (1,))[:, 0] < self.p["sync_probability"]
         b = self.p["minibatch"]
-        slots = int(b.max())
-        # Row j of worker i for slot s: floor(m_i u) is uniform on 0..m_i-1 up to 2^-53;
-        # the min guards the rounding of m_i u.
-        # Shape (slots, n): element s*n + i does not depend on how many slots the batch needs.
-        u = uniform(keys, round_, STREAM["minibatch"], (slots, n)).transpose(0, 2, 1)
-        last = (self._sizes - 1).astype(np.int64)[None, :, None]
-        rows = np.minimum((u * self._sizes[None, :, None]).astype(np.int64), last)
-        live = np.arange(slots)[None, None, :] < b[:, None, None]
-        W = np.zeros((B, n, self._m_max))
-        bi = np.broadcast_to(np.arange(B)[:, None, None], rows.shape)
-        wi = np.broadcast_to(np.arange(n)[None, :, None], rows.shape)
-        np.add.at(W, (bi, wi, rows), np.where(live, 1.0 / b[:, None, None], 0.0))
+        W = minibatch_weights(keys, round_, self._sizes, b, self._m_max)
         both = self.problem.weighted_grads(np.concatenate([X, self.state["x"]]), np.concatenate([W, W]))
         q, bits = self.compressor.compress(both[:B] - both[B:], keys, round_)
         g = self.state["g"] + q.mean(axis=1)
