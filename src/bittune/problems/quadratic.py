@@ -87,31 +87,32 @@ class Quadratic:
         return per, float(np.linalg.norm(self.H.mean(axis=0), ord=2))
 
     def loss_lower_bound(self) -> float:
-        """inf f: exact when f is bounded below, ``-inf`` when it is not.
-
-        f(x) = (1/2) x^T Hbar x + bbar^T x with Hbar = mean H_i, bbar = mean b_i.
-        With Hbar = V diag(lam) V^T and c = V^T bbar, f is bounded below iff
-        every lam_j >= 0 and c_j = 0 wherever lam_j = 0; then
-        inf f = -(1/2) sum_{lam_j > 0} c_j^2 / lam_j. "Zero" means below
-        ``d * eps * ||Hbar||`` for eigenvalues (the rounding level of
-        ``eigh``) and ``sqrt(eps) * ||bbar||`` for c_j. Only the mean matters:
-        a worker may be indefinite while f is bounded. The probe refuses an
-        infinite bound (pass ``lower_bound`` to it instead).
-        """
-        Hbar, bbar = self.H.mean(axis=0), self.b.mean(axis=0)
-        lam, V = np.linalg.eigh(Hbar)
-        c = V.T @ bbar
-        eps = np.finfo(np.float64).eps
-        zero = self.dim * eps * max(np.abs(lam).max(), np.finfo(float).tiny)
-        if lam[0] < -zero:
-            return -np.inf
-        flat = lam <= zero
-        if np.any(np.abs(c[flat]) > np.sqrt(eps) * max(np.linalg.norm(bbar), np.finfo(float).tiny)):
-            return -np.inf
-        return float(-0.5 * np.sum(c[~flat] ** 2 / lam[~flat]))
+        """inf f: exact when f is bounded below, ``-inf`` when it is not (:func:`_inf_quadratic` on
+        Hbar = mean H_i, bbar = mean b_i). Only the mean matters: a worker may be indefinite while f
+        is bounded. The probe refuses an infinite bound (pass ``lower_bound`` to it instead)."""
+        return _inf_quadratic(self.H.mean(axis=0), self.b.mean(axis=0))
 
     def worker_loss_lower_bound(self) -> float:
-        """mean_i inf f_i, each by the rule of :meth:`loss_lower_bound` on (H_i, b_i); ``-inf`` when
-        some worker is unbounded below (then Delta* has no finite bound from the model)."""
-        return float(np.mean([Quadratic(self.H[i:i + 1], self.b[i:i + 1]).loss_lower_bound()
-                              for i in range(self.n_workers)]))
+        """mean_i inf f_i, each by :func:`_inf_quadratic` on (H_i, b_i); ``-inf`` when some worker is
+        unbounded below (then Delta* has no finite bound from the model)."""
+        return float(np.mean([_inf_quadratic(H, b) for H, b in zip(self.H, self.b)]))
+
+
+def _inf_quadratic(H: np.ndarray, b: np.ndarray) -> float:
+    """inf of (1/2) x^T H x + b^T x for symmetric H: exact when bounded below, ``-inf`` when not.
+
+    With H = V diag(lam) V^T and c = V^T b, the function is bounded below iff every lam_j >= 0
+    and c_j = 0 wherever lam_j = 0; then inf = -(1/2) sum_{lam_j > 0} c_j^2 / lam_j. "Zero" means
+    below ``d * eps * ||H||`` for eigenvalues (the rounding level of ``eigh``) and
+    ``sqrt(eps) * ||b||`` for c_j.
+    """
+    lam, V = np.linalg.eigh(H)
+    c = V.T @ b
+    eps = np.finfo(np.float64).eps
+    zero = H.shape[0] * eps * max(np.abs(lam).max(), np.finfo(float).tiny)
+    if lam[0] < -zero:
+        return -np.inf
+    flat = lam <= zero
+    if np.any(np.abs(c[flat]) > np.sqrt(eps) * max(np.linalg.norm(b), np.finfo(float).tiny)):
+        return -np.inf
+    return float(-0.5 * np.sum(c[~flat] ** 2 / lam[~flat]))
