@@ -218,3 +218,17 @@ def test_configs_written_before_the_baseline_gains_and_units_sections_still_load
     assert set(parse_config(doc, source="c.yaml").extra) == {"baseline", "gains", "units"}
     with pytest.raises(InputError, match="gain: unknown key \\(did you mean 'gains'\\?\\)"):
         parse_config({**doc, "gain": {}}, source="c.yaml")
+
+
+def test_unicode_line_breaks_in_free_sections_round_trip():
+    """A config key or value with NEL, LS or PS loads back unchanged (hypothesis once found
+    ``{'target': {'\\x85': None}}`` coming back as ``{' ': None}``). Reference: PyYAML's own
+    safe_load of the written text, and the document itself."""
+    from bittune._yaml import dump_yaml, parse_yaml
+
+    doc = {"bittune_config": 1, "method": "gd", "step_size": 1.0, "compressor": {"name": "identity"},
+           "target": {"\x85": None, "a\u2028b": "c\u2029", "é": "plain"}}
+    text = dump_yaml(doc)
+    assert yaml.safe_load(text) == doc
+    assert parse_yaml(text, source="c.yaml") == doc
+    assert "é: plain" in text  # other non-ASCII text stays readable, not escaped

@@ -93,6 +93,20 @@ class _Dumper(yaml.SafeDumper):
 
 _Dumper.add_implicit_resolver("tag:yaml.org,2002:float", _FLOAT_12, list("-+.0123456789"))
 
+#: Unicode line breaks (YAML 1.1 sec. 5.4, from memory: NEL, LS, PS) that PyYAML writes raw into a single-quoted
+#: or plain scalar with ``allow_unicode``; its reader then folds them (NEL comes back as a space).
+_UNICODE_BREAKS = "\x85\u2028\u2029"
+
+
+def _represent_str(dumper: yaml.SafeDumper, text: str):
+    """A string with a Unicode line break goes double-quoted, where the emitter escapes it
+    (``\\N``, ``\\L``, ``\\P``) and it loads back unchanged; other strings as PyYAML chooses."""
+    style = '"' if any(c in text for c in _UNICODE_BREAKS) else None
+    return dumper.represent_scalar("tag:yaml.org,2002:str", text, style=style)
+
+
+_Dumper.add_representer(str, _represent_str)
+
 
 def read_bytes(path: str | os.PathLike) -> bytes:
     """The bytes of a user's file; a missing or unreadable file is an InputError."""
