@@ -246,9 +246,12 @@ ERRORS = [
     (dict(probe={"safety": 0.5}), "probe.safety: must be a number >= 1, got 0.5"),
     (dict(probe={"runs": 0}), "probe.runs: must be an integer in [1, 100], got 0"),
     (dict(probe={"power_iters": 10**23}), "probe.power_iters: must be an integer in [1, 10000], got 100000000000000000000000"),
-    (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, objective, plugin, data, workers, "
+    (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, objective, prefer, plugin, data, workers, "
                   "target, budget, mlp, network, assume, engine, probe, search, start)"),
-    (dict(objective="joules"), "objective: must be one of bits, seconds, got 'joules'"),
+    (dict(objective="joules"), "objective: must be one of bits, seconds, front, got 'joules'"),
+    (dict(prefer="bits"), "prefer: only used with objective: front (it picks a point of the bits-seconds front), "
+                          "but the objective is bits; remove prefer or set objective: front"),
+    (dict(objective="front", prefer="joules"), "prefer: must be one of bits, seconds, balanced, got 'joules'"),
     (dict(network={"uplink_bandwidth": 0}), "network.uplink_bandwidth: must be a number > 0, got 0"),
     (dict(search={"methods": ["marina", "sgd"]}),
      "search.methods: must be a list of distinct values from gd, dcgd, diana, marina, pp_marina, vr_marina, ef21, got ['marina', 'sgd'] "

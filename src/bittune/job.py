@@ -34,6 +34,9 @@ __all__ = [
 MAX_JOBS = 64
 
 MODELS = ("logistic_nonconvex", "least_squares", "softmax", "mlp", "plugin")
+OBJECTIVES = ("bits", "seconds", "front")
+#: ``prefer``: the point of the front the config holds (bittune.front.choose).
+PREFER = ("bits", "seconds", "balanced")
 METHOD_NAMES = ("gd", "dcgd", "diana", "marina", "pp_marina", "vr_marina", "ef21")
 COMPRESSOR_NAMES = ("identity", "rand_k", "top_k", "dither", "natural", "natural_dither", "perm_k")
 SPLITS = ("iid", "by_label", "dirichlet", "column")
@@ -170,6 +173,7 @@ class Job:
     allow_code: bool = False  # --allow-code: a plugin model may be imported
     assume: AssumeSpec = AssumeSpec(pl_mu=None)
     engine: EngineSpec = EngineSpec()
+    prefer: str | None = None  # objective front: bits | seconds | balanced (bittune.front.choose)
 
 
 #: Top-level keys that hold a single value ("" section).
@@ -177,7 +181,10 @@ TOP = {
     "model": Param("choice", options=MODELS, default=REQUIRED),
     # the default depends on the model, filled in by parse_job
     "regularization": Param("real", low=0.0),
-    "objective": Param("choice", options=("bits", "seconds"), default="bits"),
+    # front: a two-objective study over (bits, seconds) and a validated front (docs/design.md, "The front")
+    "objective": Param("choice", options=OBJECTIVES, default="bits"),
+    # which point of the validated front the config holds (objective front only; default balanced)
+    "prefer": Param("choice", options=PREFER),
     # model plugin: "module:function" or "path/file.py:function" (runs only with --allow-code)
     "plugin": Param("str"),
 }
@@ -273,7 +280,7 @@ _USED_ONLY_IF = {
                                 "workers.split is dirichlet"),
     "start.scale": (lambda v: v["start"].get("seed") is not None, "start.seed is set"),
     **{f"mlp.{k}": (lambda v: v[""].get("model") == "mlp", "model is mlp") for k in ("hidden", "activation", "loss")},
-    **{f"network.{k}": (lambda v: v[""].get("objective") == "seconds", "objective is seconds")
+    **{f"network.{k}": (lambda v: v[""].get("objective") in ("seconds", "front"), "objective is seconds or front")
        for k in ("latency", "uplink_bandwidth", "downlink_bandwidth", "compute_seconds")},
 }
 
@@ -335,6 +342,9 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
     if values["engine"].get("precision") == "float32" and model is not None and model not in _FLOAT32_MODELS:
         problems.append(f"engine.precision: float32 is available for the models {', '.join(_FLOAT32_MODELS)}, "
                         f"not {model} (use float64)")
+    if values[""].get("prefer") is not None and values[""].get("objective") != "front":
+        problems.append(f"prefer: only used with objective: front (it picks a point of the bits-seconds front), "
+                        f"but the objective is {values[''].get('objective')}; remove prefer or set objective: front")
     if problems:
         raise InputError(problems, source=source)
     if values[""].get("model") == "plugin" and not values[""].get("plugin"):
@@ -354,6 +364,7 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
         workers=WorkersSpec(**values["workers"]), target=TargetSpec(**values["target"]),
         budget=BudgetSpec(**values["budget"]), start=start, probe=ProbeSpec(**values["probe"]),
         search=SearchSpec(**values["search"]), objective=top["objective"],
+        prefer=top["prefer"] or "balanced" if top["objective"] == "front" else None,
         model_options=_model_options(top, values, base_dir),
         network=NetworkSpec(**values["network"]),
         raw=deepcopy(mapping), digest=digest, assume=AssumeSpec(**values["assume"]),

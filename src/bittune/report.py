@@ -31,6 +31,7 @@ from optuna.trial import TrialState
 
 from ._yaml import atomic_write_bytes, atomic_write_text
 from .errors import InputError
+from .search import trial_value
 
 __all__ = ["write_report", "report_data", "curve_band", "seconds_curve", "has_seconds", "search_history",
            "step_response", "worker_smoothness", "best_per_method", "importance", "varying_params", "why",
@@ -124,14 +125,14 @@ def _reached_all(t) -> bool:
 
 def _completed(study) -> list:
     return sorted((t for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
-                   if t.value is not None and math.isfinite(t.value)), key=lambda t: t.number)
+                   if trial_value(t) is not None and math.isfinite(trial_value(t))), key=lambda t: t.number)
 
 
 def search_history(study) -> dict:
     """Trial value against trial number; pruned trials at the mean bits they spent before the stop."""
     trials = sorted(study.get_trials(deepcopy=False), key=lambda t: t.number)
     done = _completed(study)
-    values = np.array([t.value for t in done], float)
+    values = np.array([trial_value(t) for t in done], float)
     pruned = [t for t in trials if t.state == TrialState.PRUNED]
     return {
         "complete": {"number": [t.number for t in done], "value": values,
@@ -161,7 +162,7 @@ def step_response(study) -> dict:
         row = out.setdefault(m, {"number": [], "step_mult": [], "value": [], "reached_all": [], "compressor": []})
         row["number"].append(t.number)
         row["step_mult"].append(float(t.params[f"{m}.step_mult"]))
-        row["value"].append(float(t.value))
+        row["value"].append(trial_value(t))
         row["reached_all"].append(_reached_all(t))
         row["compressor"].append(_compressor(t.params))
     return {"methods": out}
@@ -183,11 +184,11 @@ def best_per_method(study) -> dict:
     best: dict = {}
     for t in _completed(study):
         m = t.params["method"]
-        if m not in best or t.value < best[m].value:
+        if m not in best or trial_value(t) < trial_value(best[m]):
             best[m] = t
-    order = sorted(best, key=lambda m: best[m].value)
+    order = sorted(best, key=lambda m: trial_value(best[m]))
     tried = {t.params["method"] for t in study.get_trials(deepcopy=False) if "method" in t.params}
-    return {"method": order, "best": [float(best[m].value) for m in order],
+    return {"method": order, "best": [trial_value(best[m]) for m in order],
             "number": [best[m].number for m in order], "reached_all": [_reached_all(best[m]) for m in order],
             "none_completed": sorted(tried - set(best))}
 
@@ -223,7 +224,9 @@ def importance(study) -> dict:
         # evaluators (fANOVA, MDI) would only use params present in every completed trial.
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            raw = optuna.importance.get_param_importances(study, params=params, normalize=False)
+            # A front study's importances are those for its first objective, bits (Optuna needs a target).
+            target = trial_value if len(study.directions) > 1 else None
+            raw = optuna.importance.get_param_importances(study, params=params, normalize=False, target=target)
     except Exception as exc:  # too few trials, a single-valued space, a missing optional package
         out["reason"] = f"not enough trials ({type(exc).__name__}: {exc})"
         return out
@@ -259,10 +262,10 @@ def why(summary: dict, study) -> dict:
         best: dict = {}
         for t in _completed(study):
             m = t.params["method"]
-            if m != w["method"] and _reached_all(t) and (m not in best or t.value < best[m].value):
+            if m != w["method"] and _reached_all(t) and (m not in best or trial_value(t) < trial_value(best[m])):
                 best[m] = t
         if best:
-            t = min(best.values(), key=lambda t: t.value)
+            t = min(best.values(), key=trial_value)
             row = {"mean_bits_per_worker": float(np.mean(t.user_attrs["bits"])),
                    "mean_rounds": float(np.mean(t.user_attrs["rounds"])), "reached": 1, "seeds": 1}
             out["runner_up"] = _cost_row(f"{t.params['method']} + {_compressor(t.params)}", row, "search")
@@ -300,9 +303,34 @@ def why_sentence(d: dict) -> str:
     return text + " (means over the fresh seeds unless marked)."
 
 
+def front_data(summary: dict, study) -> dict | None:
+    """A front study's points (bits, seconds): every completed trial on the search seeds (mean over them),
+    the study's non-dominated trials, the finalists and the written front on the fresh seeds, the chosen one."""
+    sel = summary["selection"]
+    if not sel.get("front"):
+        return None
+    trials = [t for t in _completed(study) if t.user_attrs.get("seconds")]
+    best = {t.number for t in study.best_trials}
+
+    def points(rows):
+        return {"bits": [float(r["mean_bits_per_worker"]) for r in rows],
+                "seconds": [float(r["mean_seconds"]) for r in rows],
+                "label": [f"{r['method']} + {r['compressor']}" for r in rows]}
+
+    return {"trials": {"bits": [float(np.mean(t.user_attrs["bits"])) for t in trials],
+                       "seconds": [float(np.mean(t.user_attrs["seconds"])) for t in trials],
+                       "reached_all": [_reached_all(t) for t in trials],
+                       "non_dominated": [t.number in best for t in trials]},
+            "finalists": points(sel["front_finalists"]), "front": points(sel["front"]),
+            "chosen": points([r for r in sel["front"] if r.get("chosen")]), "prefer": sel.get("prefer")}
+
+
 def report_data(summary: dict, study) -> dict:
     """Every number the figures show (what ``report_data.json`` holds)."""
     out = {"convergence": {w: curve_band(summary, w) for w in ("winner", "baseline")}}
+    front = front_data(summary, study)
+    if front is not None:
+        out["front"] = front
     if has_seconds(summary):
         out["convergence_seconds"] = {w: curve_band(summary, w, x="seconds") for w in ("winner", "baseline")}
     return {**out, "history": search_history(study), "step": step_response(study),
@@ -375,6 +403,25 @@ def _draw_history(d: dict) -> bytes:
     failed = d["counts"].get("fail", 0)
     ax.set(yscale="log", xlabel="trial number", ylabel="mean uplink bits per worker",
            title="Search history" + (f" ({failed} failed trials not shown)" if failed else ""))
+    return _png(fig, ax)
+
+
+def _draw_front(d: dict) -> bytes:
+    fig, ax = _figure(7.5, 4.8)
+    t = d["trials"]
+    ok, nd = np.asarray(t["reached_all"], bool), np.asarray(t["non_dominated"], bool)
+    _scatter(ax, t["bits"], t["seconds"], ok & ~nd, color="tab:gray", label="trials (search seeds)")
+    _scatter(ax, t["bits"], t["seconds"], ok & nd, color="tab:blue", label="non-dominated trials (search seeds)")
+    f, c = d["finalists"], d["front"]
+    ax.scatter(f["bits"], f["seconds"], marker="s", facecolors="none", edgecolors="tab:green",
+               label="validated (fresh seeds)")
+    order = np.argsort(c["bits"])
+    ax.step(np.asarray(c["bits"])[order], np.asarray(c["seconds"])[order], where="post", color="tab:green",
+            lw=1.2, label="front written to the config")
+    ax.scatter(d["chosen"]["bits"], d["chosen"]["seconds"], marker="*", s=220, color="tab:orange", zorder=5,
+               label=f"chosen (prefer: {d['prefer']})")
+    ax.set(xscale="log", yscale="log", xlabel="mean uplink bits per worker", ylabel="mean simulated seconds",
+           title="Bits against seconds to target")
     return _png(fig, ax)
 
 
@@ -503,6 +550,17 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
                     f"+ compute {net['compute_seconds']:.3g} s per gradient pass + uplink bits / "
                     f"{net['uplink_bandwidth']:g} bit/s + downlink bits / {net['downlink_bandwidth']:g} bit/s per "
                     "round), same seeds and band as above."))
+    if "front" in figures:
+        fr = data["front"]
+        doc += [("h", "Front"),
+                ("p", f"objective: front. {len(fr['front']['bits'])} validated non-dominated settings are written to "
+                      f"the config's front section; prefer: {fr['prefer']} chose "
+                      f"{', '.join(fr['chosen']['label'])} (before the step back-off)."),
+                ("table", ["setting", "mean bits/worker", "mean seconds"],
+                 [[lab, _bits(b), _fmt(sec)] for lab, b, sec in zip(fr["front"]["label"], fr["front"]["bits"],
+                                                                   fr["front"]["seconds"])]),
+                ("img", "front", "Mean uplink bits against mean simulated seconds: the search's trials, the "
+                                 "validated finalists and the written front, the chosen point starred.")]
     h, m = data["history"], data["methods"]
     doc += [("h", "Search"),
             ("p", f"{s['search']['trials']} trials over {', '.join(s['search']['methods'])} on seeds "
@@ -691,10 +749,12 @@ def write_report(run_dir, *, out_dir=None, drift: list[dict] | None = None,
         images["methods"] = _draw_methods(data["methods"])
     if data["importance"]["ok"]:
         images["importance"] = _draw_importance(data["importance"])
+    if "front" in data:
+        images["front"] = _draw_front(data["front"])
     paths = {name: out / f"{name}.png" for name in images}
     for name, png in images.items():
         atomic_write_bytes(paths[name], png)
-    for name in {"methods", "importance", "convergence_seconds"} - set(images):  # an earlier report's figure
+    for name in {"methods", "importance", "convergence_seconds", "front"} - set(images):  # an earlier report's figure
         (out / f"{name}.png").unlink(missing_ok=True)
     title, doc = _document(summary, data, images, drift=drift, extra_sections=extra_sections)
     paths["data"], paths["markdown"], paths["html"] = out / "report_data.json", out / "report.md", out / "report.html"

@@ -28,7 +28,7 @@ import numpy as np
 from .config import Config, config_to_dict, load_config, write_config
 from .report import write_report
 from .errors import EXIT, InputError
-from .search import SYNCED, Candidate, open_storage
+from .search import SYNCED, Candidate, open_storage, trial_value
 from .select import Evaluation, evaluate, select
 from .progress import Progress
 from .tune import (_config_doc, _plain, check_existing_study, check_paths, hold_run_dir, objective_unit, prepare,
@@ -165,7 +165,7 @@ def _previous_best(cfg: Config, path: Path, count: int = 3) -> list[Candidate]:
 
         study = optuna.load_study(study_name=name, storage=open_storage(url))
         trials = sorted((t for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
-                         if t.value is not None and "candidate" in t.user_attrs), key=lambda t: t.value)
+                         if t.values is not None and "candidate" in t.user_attrs), key=trial_value)
     except Exception:  # an unreachable or foreign storage only costs the warm start
         return []
     out = []

@@ -40,6 +40,7 @@ from .theory import fits, measured_contraction, theory_point
 __all__ = [
     "Candidate", "Space", "Objective", "score", "open_storage", "open_study", "enqueue_seeds",
     "fail_stale_trials", "run_trials", "search_seeds", "stall_window", "COUNTED", "mask_url", "TrialPlan",
+    "trial_value", "FRONT_DIRECTIONS",
 ]
 
 #: Trial states that count against the global budget.
@@ -52,6 +53,16 @@ SYNCED = ("marina", "pp_marina", "vr_marina")
 STALL_ROUNDS = 100
 #: Cost between pruning checkpoints grows by this factor (common practice, no source).
 CHECKPOINT_GROWTH = 2.0
+#: The objective ``front``: a two-objective study, (uplink bits per worker, simulated seconds), both minimised.
+FRONT_DIRECTIONS = ("minimize", "minimize")
+
+
+def trial_value(t) -> float | None:
+    """A finished trial's scalar value: its value, or the first objective (bits) of a front study's trial."""
+    values = t.values
+    if values is None:
+        return None
+    return float(values[0])
 
 
 @dataclass(frozen=True)
@@ -350,6 +361,9 @@ class Objective:
     network: object = None  # a NetworkModel for the objective "seconds"; None: bits
     loss_ref: float | None = None  # f_ref of a loss-gap target (then ``target`` is the gap); None: ||grad f||^2
     precision: str = "float64"  # the job's engine.precision
+    #: objective front: the value is (bits, seconds) and no trial is pruned (Optuna prunes single-objective
+    #: studies only; docs/design.md, "The front")
+    front: bool = False
     _best: float = field(default=math.inf, repr=False)
 
     def __call__(self, trial: optuna.Trial) -> float:
@@ -383,20 +397,26 @@ class Objective:
             cost_at = lambda k, bits: net.seconds_at(k, passes * k, bits, dense_bits(d) * k)  # noqa: E731
         # Checkpoints start at the cost of four dense rounds and grow geometrically.
         monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at,
-                                start=cost_at(4, 4 * 32.0 * d))
+                                start=cost_at(4, 4 * 32.0 * d), prune=not self.front)
         return TrialPlan(cand, comp, window, monitor, cap)
 
     def bits_cap(self, cap: float | None) -> float | None:
         """The engine's bit cap per worker: the cost cap when the cost is bits, else the job's."""
         return cap if self.network is None else self.max_bits
 
-    def finish(self, trial: optuna.Trial, plan: "TrialPlan", runs: list[Trajectory]) -> float:
-        """Score ``trial``'s runs and record them on it; raises ``TrialPruned`` for a pruned trial."""
+    def finish(self, trial: optuna.Trial, plan: "TrialPlan", runs: list[Trajectory]) -> float | list[float]:
+        """Score ``trial``'s runs and record them on it; raises ``TrialPruned`` for a pruned trial.
+        A front study's value is [bits, seconds], each scored by :func:`score` with its own floor."""
         cap, monitor = plan.cap, plan.monitor
         # Before any trial has reached the target there is no cap; a miss must still score above
         # every possible reach, so its penalty starts from the most a reach could cost.
         floor = cap if cap is not None else self._most_a_reach_costs()
-        value, per_seed = score(runs, target=self.target, cap=floor, cost=cost_function(self.network))
+        if self.front:
+            bits_floor = self.max_bits if self.max_bits is not None else self._most_a_reach_costs(bits=True)
+            value = [score(runs, target=self.target, cap=bits_floor)[0]]
+            floor = self._most_a_reach_costs()
+        value_s, per_seed = score(runs, target=self.target, cap=floor, cost=cost_function(self.network))
+        value = value + [value_s] if self.front else value_s
         if self.network is not None:
             trial.set_user_attr("seconds", [float(self.network.seconds(r)) for r in runs])
         trial.set_user_attr("status", [r.status for r in runs])
@@ -409,7 +429,7 @@ class Objective:
             raise optuna.TrialPruned(f"pruned at {monitor.step} bit checkpoints")
         return value
 
-    def _most_a_reach_costs(self) -> float:
+    def _most_a_reach_costs(self, *, bits: bool = False) -> float:
         """An upper bound on the cost of any trajectory that reaches the target within the round budget.
 
         No message of our compressors exceeds d (33 + ceil(log2 d)) bits (a value and an index per
@@ -417,15 +437,17 @@ class Objective:
         (VR-MARINA: 2 b' <= 2 m_i).
         """
         d = self.problem.dim
-        bits = (self.max_rounds + 1) * d * (33 + math.ceil(math.log2(max(d, 2))))
-        if self.network is None:
-            return float(bits)
+        most = (self.max_rounds + 1) * d * (33 + math.ceil(math.log2(max(d, 2))))
+        if self.network is None or bits:
+            return float(most)
         rounds = self.max_rounds + 1
-        return float(self.network.seconds_at(rounds, 2.0 * rounds, bits, dense_bits(d) * rounds))
+        return float(self.network.seconds_at(rounds, 2.0 * rounds, most, dense_bits(d) * rounds))
 
     def _cap(self, study: optuna.Study) -> float | None:
         """Cost cap: bits_cap_factor x the best all-seeds-reached value so far (and the job's bit cap,
-        when the cost is bits)."""
+        when the cost is bits). A front study has no single best: its cap is the job's bit cap only."""
+        if self.front:
+            return None
         best = self._best
         for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
             if t.user_attrs.get("reached") == len(self.seeds) and t.value is not None:
@@ -446,8 +468,9 @@ class _PruneMonitor:
     search minimises, so a pruner never judges cheap-per-round settings by rounds.
     """
 
-    def __init__(self, trial, n_seeds: int, target: float, *, cost_at, start: float):
+    def __init__(self, trial, n_seeds: int, target: float, *, cost_at, start: float, prune: bool = True):
         self.trial, self.target, self.cost_at = trial, target, cost_at
+        self.prune = prune  # False: never reports nor stops (a front study)
         self.best = np.full(n_seeds, np.inf)
         self.next_cost = start
         self.step = 0
@@ -458,7 +481,7 @@ class _PruneMonitor:
 
     def __call__(self, k, index, bits, metric) -> bool:
         self.best[index] = np.minimum(self.best[index], np.where(np.isfinite(metric), metric, np.inf))
-        if bits.size == 0 or self.cost_at(k, bits.mean()) < self.next_cost:
+        if not self.prune or bits.size == 0 or self.cost_at(k, bits.mean()) < self.next_cost:
             return False
         with np.errstate(divide="ignore"):
             progress = np.log10(np.maximum(self.best, 1e-12 * self.target) / self.target)

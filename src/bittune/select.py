@@ -18,6 +18,20 @@ seeds; the best step then runs on the fresh seeds like the winner. Both gains
 (over tuned GD and over theory) come with a paired percentile bootstrap
 interval over the fresh seeds (Efron & Tibshirani 1993, ch. 13; computed by
 ``scipy.stats.bootstrap`` with a seeded ``numpy.random.Generator``).
+
+Transfer check: the finalists also run, on the same fresh seeds, on a bootstrap
+resample of every worker's shard (:mod:`bittune.transfer`); a finalist that
+misses the target there on some seed ranks after every finalist that reaches it
+on both (:func:`pick`). The ratio of its mean cost on the resample to that on
+the sample is its transfer ratio.
+
+``objective: front``: the finalists are the study's non-dominated trials
+(``study.best_trials``, at most ``front.FRONT_TRIALS``); the validated front is
+the finalists that reached the target on every fresh seed and that no other such
+finalist dominates on (mean bits, mean seconds); ``prefer`` picks the winner
+among them (:func:`bittune.front.choose`), those that pass the transfer check
+first. The back-off then keeps a smaller step only while neither mean cost grows
+by more than ``backoff_tolerance``.
 """
 
 from __future__ import annotations
@@ -29,12 +43,13 @@ import numpy as np
 from optuna.trial import TrialState
 
 from .compressors import make_compressor
+from .front import FRONT_TRIALS, choose, non_dominated, thin
 from .search import SEED_LADDER, Candidate, Space, score, search_seeds, stall_window
 from .parallel import start_batch
 from .simulate import Trajectory
 
 __all__ = ["Evaluation", "Selection", "Gain", "validation_seeds", "evaluate", "select", "gd_ladder",
-           "paired_gain", "GAIN_LEVEL", "GAIN_RESAMPLES"]
+           "paired_gain", "GAIN_LEVEL", "GAIN_RESAMPLES", "pick", "transfer_entry"]
 
 #: Confidence level and resamples of the paired bootstrap intervals of the gains (common practice, no source:
 #: 95%, and enough resamples that the percentile ends move by well under 1% between generator seeds).
@@ -75,6 +90,11 @@ class Evaluation:
     @property
     def mean_bits(self) -> float:
         return float(self.bits.mean())
+
+    @property
+    def both(self) -> tuple[float, float]:
+        """(mean bits, mean seconds): a front point (network required)."""
+        return self.mean_bits, self.mean_cost
 
     def summary(self) -> dict:
         b, k = self.bits, self.rounds
@@ -146,6 +166,14 @@ class Selection:
     seeds: list[int]
     gd: Evaluation | None = None  # tuned uncompressed GD on the fresh seeds
     gd_ladder: list[Evaluation] = field(default_factory=list)  # GD's step ladder on the search seeds
+    #: the transfer check: each finalist (same order) and the winner on the data resample, same seeds
+    resampled: list[Evaluation] = field(default_factory=list)
+    winner_resample: Evaluation | None = None
+    #: objective front: the validated front (at most front.FRONT_SIZE, by bits; the chosen point's
+    #: finalist among them) and ``prefer``
+    front: list[Evaluation] = field(default_factory=list)
+    prefer: str | None = None
+    chosen: Evaluation | None = None  # the finalist the winner came from (before the back-off)
 
     @property
     def all_reached(self) -> bool:
@@ -259,7 +287,10 @@ def _best_rung(ws, ladder: list[Evaluation], network) -> Candidate:
 
 
 def finalists(study, space: Space, *, count: int) -> list[Candidate]:
-    """The best ``count`` distinct completed candidates, best first."""
+    """The best ``count`` distinct completed candidates, best first. A front study's finalists are its
+    non-dominated trials (``study.best_trials``): at most FRONT_TRIALS, evenly spread by bits."""
+    if len(study.directions) > 1:
+        return _front_finalists(study, space)
     trials = sorted((t for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
                      if t.value is not None and math.isfinite(t.value)), key=lambda t: t.value)
     out, seen = [], set()
@@ -270,6 +301,63 @@ def finalists(study, space: Space, *, count: int) -> list[Candidate]:
             out.append(cand)
         if len(out) == count:
             break
+    return out
+
+
+def _front_finalists(study, space: Space) -> list[Candidate]:
+    trials = [t for t in study.best_trials if all(math.isfinite(v) for v in t.values)]
+    out, seen, costs = [], set(), []
+    for t in sorted(trials, key=lambda t: tuple(t.values)):
+        cand = space.from_params(t.params)
+        if cand.key() not in seen:
+            seen.add(cand.key())
+            out.append(cand)
+            costs.append(t.values)
+    if len(out) > FRONT_TRIALS:
+        out = [out[i] for i in thin(costs, FRONT_TRIALS)]
+    return out
+
+
+def pick(evals: list[Evaluation], resampled: list[Evaluation] | None = None, *,
+         prefer: str | None = None) -> tuple[int, list[int]]:
+    """The winner's index among ``evals`` and (``prefer`` given: a front) the validated front's indices.
+
+    Finalists that reached the target on every fresh seed on the sample and on the resample
+    (``resampled``, same order) come first, then those that reached it on the sample only, then the
+    rest (most seeds reached, then cost). Single objective: the least mean cost. Front: the front is
+    the sample-validated finalists no other dominates on (mean bits, mean seconds), and ``prefer``
+    picks among its members that pass on the resample (all of it when none does)."""
+    n = len(evals)
+    moved = [i for i in range(n) if resampled is not None and evals[i].all_reached
+             and resampled[i].all_reached]
+    ok = [i for i in range(n) if evals[i].all_reached]
+    if prefer is None:
+        pool = moved or ok
+        if pool:
+            return min(pool, key=lambda i: evals[i].mean_cost), []
+        return min(range(n), key=lambda i: (-sum(r.reached for r in evals[i].runs), evals[i].mean_cost)), []
+    if not ok:
+        return pick(evals, resampled)[0], []
+    costs = np.array([evals[i].both for i in ok])
+    front = [ok[j] for j in np.flatnonzero(non_dominated(costs))]
+    pool = [i for i in front if i in moved] or front
+    chosen = pool[choose(np.array([evals[i].both for i in pool]), prefer)]
+    return chosen, front
+
+
+def transfer_entry(sample: Evaluation, resample: Evaluation) -> dict:
+    """One finalist's transfer check: seeds reached on the sample and the resample, and the ratios of the
+    mean costs (resample / sample): bits, seconds when there is a network, and ``transfer_ratio`` in the
+    unit the selection ranks by (:attr:`Evaluation.mean_cost`)."""
+    out = {"method": sample.candidate.method, "compressor": sample.candidate.label,
+           "step_size": float(sample.candidate.step_size), "seeds": len(sample.runs),
+           "reached_sample": int(sum(r.reached for r in sample.runs)),
+           "reached_resample": int(sum(r.reached for r in resample.runs)),
+           "passed": bool(sample.all_reached and resample.all_reached),
+           "transfer_ratio": float(resample.mean_cost / sample.mean_cost),
+           "bits_ratio": float(resample.mean_bits / sample.mean_bits)}
+    if sample.network is not None:
+        out["seconds_ratio"] = out["transfer_ratio"]
     return out
 
 
@@ -299,12 +387,20 @@ def select(ws, space: Space, study, network=None, log=None) -> Selection:
     # Tuned GD: all ladder steps x search seeds in one batch, beside the finalists when --jobs > 1.
     pending_ladder = start_evaluate(ws, ladder_cands, search_seeds(spec), network, jobs=spec.jobs,
                                     task=base_task.part())
+    from .transfer import resampled_workspace
+
+    # The transfer check: the finalists on the data resample, same seeds (in another process with --jobs > 1).
+    ws_r = resampled_workspace(ws)
+    tr_task = start_task(log, "transfer check", len(cands) * S, "trajectories")
+    pending_resample = start_evaluate(ws_r, cands, seeds, network, jobs=spec.jobs, task=tr_task)
     val_task = start_task(log, "validation", len(cands) * S, "trajectories")
     evals = evaluate(ws, cands, seeds, network, task=val_task)
     val_task.finish()
-    ok = [e for e in evals if e.all_reached]
-    winner = min(ok, key=lambda e: e.mean_cost) if ok else min(
-        evals, key=lambda e: (-sum(r.reached for r in e.runs), e.mean_cost))
+    resampled = pending_resample()
+    tr_task.finish()
+    prefer = ws.job.prefer if ws.job.objective == "front" else None
+    chosen, front_idx = pick(evals, resampled, prefer=prefer)
+    winner = evals[chosen]
     if pending_baseline is None:
         pending_baseline = _start_baseline(ws, space, winner.candidate.method, seeds, network,
                                            task=base_task.part())
@@ -314,16 +410,25 @@ def select(ws, space: Space, study, network=None, log=None) -> Selection:
         back_task = start_task(log, "back-off", len(steps) * S, "trajectories")
         backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds, network, task=back_task)
         back_task.finish()
-        limit = winner.mean_cost * (1.0 + spec.backoff_tolerance)
-        chosen = winner
+        # A front's winner keeps a smaller step only while neither of its two costs grows by more.
+        cost = (lambda e: np.array(e.both)) if prefer is not None else (lambda e: np.array([e.mean_cost]))
+        limit = cost(winner) * (1.0 + spec.backoff_tolerance)
+        best = winner
         for e in backoff:
-            if not (e.all_reached and e.mean_cost <= limit):
+            if not (e.all_reached and np.all(cost(e) <= limit)):
                 break
-            chosen = e
-        winner = chosen
+            best = e
+        winner = best
+    winner_resample = resampled[chosen]
+    if winner is not evals[chosen]:  # the back-off moved the step: the chosen config on the resample too
+        winner_resample = evaluate(ws_r, [winner.candidate], seeds, network)[0]
     ladder = pending_ladder()
     gd = evaluate(ws, [_best_rung(ws, ladder, network)], seeds, network, task=base_task.part())[0]
     baseline = pending_baseline()[0]
     base_task.finish()
+    # The front as validated (the chosen finalist before any back-off, so every point stays non-dominated).
+    front = [evals[front_idx[j]] for j in thin([evals[i].both for i in front_idx], keep=front_idx.index(chosen))] \
+        if front_idx else []
     return Selection(winner=winner, baseline=baseline, finalists=evals, backoff=backoff, seeds=seeds, gd=gd,
-                     gd_ladder=ladder)
+                     gd_ladder=ladder, resampled=resampled, winner_resample=winner_resample, front=front,
+                     prefer=prefer, chosen=evals[chosen])

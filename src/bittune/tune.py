@@ -29,9 +29,9 @@ from .job import Job, data_digest, load_job
 from .probe import probe_workspace
 from .progress import Progress
 from .report import write_report
-from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials, mask_url, open_storage,
-                     open_study, run_trials, search_seeds)
-from .select import GAIN_RESAMPLES, Selection, select
+from .search import (COUNTED, FRONT_DIRECTIONS, Objective, Space, enqueue_seeds, fail_stale_trials, mask_url,
+                     open_storage, open_study, run_trials, search_seeds, trial_value)
+from .select import GAIN_RESAMPLES, Selection, select, transfer_entry
 from .workspace import open_job
 
 __all__ = ["TuneResult", "tune", "study_name", "check_study_name", "STUDY_NAME", "worker_main"]
@@ -50,7 +50,7 @@ class TuneResult:
 
 def objective_unit(job: Job) -> str:
     """How a trial's value reads in progress lines."""
-    return "s simulated" if job.objective == "seconds" else "bits/worker"
+    return "s simulated" if job.objective == "seconds" else "bits/worker"  # front: its first objective, bits
 
 
 def study_name(job: Job) -> str:
@@ -133,8 +133,8 @@ def prepare(job_path, overrides: dict, log, *, allow_code: bool = False) -> Prep
 
 
 def network_model(job: Job, ws):
-    """The job's network model when it minimises seconds (compute time measured if not given)."""
-    if job.objective != "seconds":
+    """The job's network model when it minimises seconds or a front (compute time measured if not given)."""
+    if job.objective not in ("seconds", "front"):
         return None
     from .cost import NetworkModel, measure_compute_seconds
 
@@ -187,7 +187,8 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
     # Inputs are valid and the model passed its check: only now touch the disk.
     run_dir.mkdir(parents=True, exist_ok=True)
     store = store or open_storage(storage_url)
-    study = optuna.create_study(study_name=name, storage=store, direction="minimize", load_if_exists=True)
+    directions = list(FRONT_DIRECTIONS) if job.objective == "front" else ["minimize"]
+    study = optuna.create_study(study_name=name, storage=store, directions=directions, load_if_exists=True)
     _check_study(study, job, key=key)
     if "://" not in storage_url:  # one machine: whatever is RUNNING was left by a killed run
         stale = fail_stale_trials(study)
@@ -224,7 +225,7 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
             objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                                   max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                                   seeds=search_seeds(spec), worker=0, network=prep.network, loss_ref=ws.loss_ref,
-                                  precision=job.engine.precision)
+                                  precision=job.engine.precision, front=job.objective == "front")
             run_trials(open_study(store, name, sampler_seed=sampler_seeds[0], pruner=spec.pruner), objective,
                        budget=spec.trials)
         else:
@@ -381,7 +382,7 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int | None =
         objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                               max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                               seeds=search_seeds(job.search), worker=index, network=network, loss_ref=ws.loss_ref,
-                              precision=job.engine.precision)
+                              precision=job.engine.precision, front=job.objective == "front")
         return run_trials(study, objective, budget=budget or int(attrs.get("budget", job.search.trials)))
 
 
@@ -450,6 +451,10 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
             "gd": None if selection.gd is None else selection.gd.summary(),
             "gd_ladder": [e.summary() for e in selection.gd_ladder],
             "gains": {k: g.to_dict() for k, g in selection.gains(job.search.seed).items()},
+            "transfer": [transfer_entry(e, r) for e, r in zip(selection.finalists, selection.resampled)],
+            "front": [dict(e.summary(), chosen=e is selection.chosen) for e in selection.front],
+            "front_finalists": [e.summary() for e in selection.finalists] if selection.front else [],
+            "prefer": selection.prefer,
         },
         "curves": {"winner": curves(selection.winner), "baseline": curves(selection.baseline),
                    **({} if selection.gd is None else {"gd": curves(selection.gd)})},
@@ -465,8 +470,12 @@ def write_summary(run_dir: Path, *, prep: Prepared, output: Path, selection: Sel
 def _check_study(study: optuna.Study, job: Job, *, key: str = "storage", write: bool = True) -> None:
     """A study is resumed or joined only by the job file and data it was made for (exit 2 otherwise,
     naming ``key``: ``--study`` when the user chose the name); ``write`` records both digests."""
-    if study.direction != optuna.study.StudyDirection.MINIMIZE:
+    want = len(FRONT_DIRECTIONS) if job.objective == "front" else 1
+    if any(d != optuna.study.StudyDirection.MINIMIZE for d in study.directions):
         raise InputError(f"{key}: study {study.study_name!r} exists and maximises; bittune's studies minimise bits")
+    if len(study.directions) != want:
+        raise InputError(f"{key}: study {study.study_name!r} exists with {len(study.directions)} objective(s); "
+                         f"this job's objective {job.objective} has {want}")
     hint = "; choose another --study name" if key == "--study" else ""
     for attr, mine, what in (("job_digest", job.digest, "job file"), ("data_digest", data_digest(job), "data file")):
         digest = study.user_attrs.get(attr)
@@ -513,12 +522,18 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str, output:
         doc["expected"].update(mean_seconds=sig(w["mean_seconds"]), std_seconds=sig(w["std_seconds"]),
                                seconds=w["seconds"], network=prep.network.to_dict())
         doc["expected"]["theory_baseline"]["mean_seconds"] = sig(b["mean_seconds"])
+    if sel.winner_resample is not None:
+        doc["expected"]["transfer_ratio"] = sig(transfer_entry(sel.winner, sel.winner_resample)["transfer_ratio"])
     if sel.gd is not None:
         doc["baseline"] = _gd_section(sel, prep)
     doc["gains"] = {"objective": job.objective, "validation_seeds": len(sel.seeds),
                     **{k: {kk: sig(vv) for kk, vv in g.to_dict().items()} for k, g in sel.gains(spec.seed).items()},
                     "interval_method": f"paired percentile bootstrap over the validation seeds, {GAIN_RESAMPLES} "
                                        f"resamples (Efron & Tibshirani 1993, ch. 13)"}
+    if sel.resampled:
+        doc["transfer"] = _transfer_section(sel)
+    if job.objective == "front":
+        doc["front"] = _front_section(sel)
     if not sel.all_reached:
         doc["best_effort"] = True
     c = constants.to_dict()
@@ -548,6 +563,47 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str, output:
     doc["units"] = {k: v for k, v in UNITS.items()
                     if k not in ("mean_seconds", "std_seconds", "seconds") or prep.network is not None}
     return _plain(doc)
+
+
+def _transfer_section(sel: Selection) -> dict:
+    """The transfer check: every finalist and the chosen config on the data resample (select.transfer_entry)."""
+    def rounded(entry: dict) -> dict:
+        return {k: sig(v) if k.endswith("ratio") else v for k, v in entry.items()}
+
+    return {"note": "each worker's shard resampled with replacement (a bootstrap, seeded by provenance.seed), the "
+                    "target redefined on it as in the job; the same expected.validation_seeds. Ratios: mean cost on "
+                    "the resample / on the sample; a finalist that misses on the resample ranks after those that pass",
+            "chosen": rounded(transfer_entry(sel.winner, sel.winner_resample)),
+            "finalists": [rounded(transfer_entry(e, r)) for e, r in zip(sel.finalists, sel.resampled)]}
+
+
+def _front_section(sel: Selection) -> dict:
+    """The validated front: at most front.FRONT_SIZE settings with their mean bits and seconds on the fresh seeds."""
+    from .front import FRONT_SIZE
+
+    moved = {id(e): r for e, r in zip(sel.finalists, sel.resampled)}
+    points = []
+    for e in sel.front:
+        s = e.summary()
+        point = {**e.candidate.to_config(), "mean_bits_per_worker": sig(s["mean_bits_per_worker"]),
+                 "mean_seconds": sig(s["mean_seconds"]), "reached": s["reached"], "seeds": s["seeds"],
+                 "chosen": e is sel.chosen}
+        if id(e) in moved:
+            t = transfer_entry(e, moved[id(e)])
+            point.update(transfer_passed=t["passed"], transfer_ratio=sig(t["transfer_ratio"]))
+        points.append(point)
+    return {"prefer": sel.prefer, "rule": PREFER_RULES[sel.prefer],
+            "note": f"the study's non-dominated trials validated on expected.validation_seeds; kept: those that "
+                    f"reached the target on every seed and that no other dominates on (mean bits, mean seconds), at "
+                    f"most {FRONT_SIZE}, by bits. The chosen point is listed as validated; the config's step is "
+                    f"that point's after the back-off (expected holds its figures)",
+            "points": points}
+
+
+#: How ``prefer`` picks the front point (bittune.front.choose).
+PREFER_RULES = {"bits": "least mean bits per worker", "seconds": "fewest mean simulated seconds",
+                "balanced": "least product mean bits x mean seconds (unit-free; a 1% saving of one cost is "
+                            "worth a 1% loss of the other)"}
 
 
 def _gd_section(sel: Selection, prep: Prepared) -> dict:
@@ -605,7 +661,7 @@ class _Watcher(threading.Thread):
         done = sum(t.state in (TrialState.COMPLETE, TrialState.PRUNED) for t in trials)
         pruned = sum(t.state == TrialState.PRUNED for t in trials)
         failed = sum(t.state == TrialState.FAIL for t in trials)
-        values = [t.value for t in trials if t.state == TrialState.COMPLETE
+        values = [trial_value(t) for t in trials if t.state == TrialState.COMPLETE
                   and t.user_attrs.get("reached") == len(t.user_attrs.get("status", [None]))]
         best = min(values) if values else None
         state = (done, best, pruned, failed)
