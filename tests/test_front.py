@@ -180,3 +180,30 @@ def test_prefer_without_front_exits_2_and_writes_nothing(tmp_path, capsys):
     err = capsys.readouterr().err
     assert code == 2 and "prefer: only used with objective: front" in err
     assert sorted(p.name for p in tmp_path.iterdir()) == ["job.yaml", "stations.svm"]
+
+
+@pytest.mark.parametrize("target", [{"grad_norm_sq": 1e-3, "relative": True}, {"loss_gap": 1e-3}])
+def test_resampled_workspace_keeps_the_job_target_definition(tmp_path, target):
+    from bittune.job import load_job
+    from bittune.transfer import resampled_workspace
+    from bittune.workspace import open_job, reference_loss
+
+    subprocess.run([sys.executable, str(ROOT / "examples/frost/make_data.py"), "--out", str(tmp_path / "stations.svm"),
+                    "--nights", "20"], check=True, capture_output=True)
+    job = yaml.safe_load((ROOT / "examples/frost/job.yaml").read_text())
+    job["target"] = target
+    (tmp_path / "job.yaml").write_text(yaml.safe_dump(job))
+    ws = open_job(load_job(tmp_path / "job.yaml"))
+    wr = resampled_workspace(ws)
+    assert np.array_equal(wr.problem.worker_sizes, ws.problem.worker_sizes)
+    assert not np.array_equal(wr.problem.full_grad(ws.x0), ws.problem.full_grad(ws.x0))  # other data
+    if "loss_gap" in target:
+        # the same gap, to an f_ref of the resample found the same way (L-BFGS-B from x0)
+        ref = reference_loss(wr.problem, ws.x0, model=job["model"], regularization=job["regularization"])
+        assert wr.target == ws.target == 1e-3
+        assert wr.loss_ref == pytest.approx(ref["value"], rel=1e-12)  # the same deterministic solver run
+        assert wr.loss_ref != ws.loss_ref
+    else:
+        g = wr.problem.full_grad(ws.x0)
+        # relative: eps x ||grad f(x0)||^2 of the resampled problem; rel. 1e-12 covers summation order
+        assert wr.target == pytest.approx(1e-3 * float(g @ g), rel=1e-12)

@@ -196,6 +196,14 @@ def test_ignored_option_warns(folder):
                   base_dir=folder, source="j")
 
 
+def test_front_defaults_prefer_to_balanced_and_warns_of_its_ignored_search_keys(folder):
+    job = parse_job(_valid(objective="front"), base_dir=folder, source="j")
+    assert (job.objective, job.prefer) == ("front", "balanced")
+    assert parse_job(_valid(), base_dir=folder, source="j").prefer is None
+    with pytest.warns(UserWarning, match="search.pruner: ignored unless objective is bits or seconds"):
+        parse_job(_valid(objective="front", search={"pruner": "median"}), base_dir=folder, source="j")
+
+
 def test_digest_of_a_mapping_is_stable(folder):
     a = parse_job(_valid(), base_dir=folder, source="j").digest
     assert a == parse_job(_valid(), base_dir=folder, source="j").digest

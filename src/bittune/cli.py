@@ -230,6 +230,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
                     "method": cfg["method"], "compressor": cfg["compressor"], "step_size": cfg["step_size"],
                     "sync_probability": cfg.get("sync_probability"), "shift_rate": cfg.get("shift_rate"),
                     "expected": exp, "baseline": cfg.get("baseline"), "gains": cfg.get("gains"),
+                    "front": cfg.get("front"), "transfer": cfg.get("transfer"),
                     "finalists": [e.summary() for e in result.selection.finalists],
                     "backoff": [e.summary() for e in result.selection.backoff]})
     else:
@@ -252,6 +253,15 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         if exp.get("mean_seconds") is not None:
             print(f"simulated wall clock: {exp['mean_seconds']:.4g} s to target (theory baseline "
                   f"{base['mean_seconds']:.4g} s)")
+        moved = cfg.get("transfer", {}).get("chosen")
+        if moved:
+            print(f"transfer check: {moved['transfer_ratio']:.3g}x the cost on a bootstrap resample of the data, "
+                  f"reached on {moved['reached_resample']} of {moved['seeds']} seeds")
+        if cfg.get("front"):
+            pts = cfg["front"]["points"]
+            print(f"front ({len(pts)} points, prefer: {cfg['front']['prefer']}): " + "; ".join(
+                f"{'*' if p['chosen'] else ''}{p['method']} {p['mean_bits_per_worker']:,.0f} bits "
+                f"{p['mean_seconds']:.4g} s" for p in pts))
         print(f"config: {args.output}")
         print(f"report: {result.report['html']}")
     return result.exit_code

@@ -280,6 +280,9 @@ _USED_ONLY_IF = {
                                 "workers.split is dirichlet"),
     "start.scale": (lambda v: v["start"].get("seed") is not None, "start.seed is set"),
     **{f"mlp.{k}": (lambda v: v[""].get("model") == "mlp", "model is mlp") for k in ("hidden", "activation", "loss")},
+    # a front study prunes no trial and has no single best to scale a cost cap from (docs/design.md, "The front")
+    **{f"search.{k}": (lambda v: v[""].get("objective") != "front", "objective is bits or seconds")
+       for k in ("pruner", "bits_cap_factor")},
     **{f"network.{k}": (lambda v: v[""].get("objective") in ("seconds", "front"), "objective is seconds or front")
        for k in ("latency", "uplink_bandwidth", "downlink_bandwidth", "compute_seconds")},
 }
