@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["FRONT_SIZE", "FRONT_TRIALS", "non_dominated", "thin", "choose"]
+__all__ = ["FRONT_SIZE", "FRONT_TRIALS", "PREFER_RULES", "non_dominated", "thin", "choose"]
 
 #: Most front points a config lists (the issue's bound).
 FRONT_SIZE = 5
@@ -27,6 +27,10 @@ FRONT_SIZE = 5
 #: study's front by bits); our choice, no source: twice FRONT_SIZE leaves room for points the fresh
 #: seeds show to be dominated.
 FRONT_TRIALS = 10
+#: ``prefer``'s choices (the job's options) and how :func:`choose` picks by each (the config's ``front.rule``).
+PREFER_RULES = {"bits": "least mean bits per worker", "seconds": "fewest mean simulated seconds",
+                "balanced": "least product mean bits x mean seconds (unit-free; a 1% saving of one cost is "
+                            "worth a 1% loss of the other)"}
 
 
 def non_dominated(costs) -> np.ndarray:

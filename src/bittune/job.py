@@ -22,6 +22,7 @@ from bittune._yaml import (
     REQUIRED, Param, check_mapping, key_text, parse_yaml, read_bytes, show, unknown_key,
 )
 from bittune.errors import InputError
+from bittune.front import PREFER_RULES
 
 __all__ = [
     "DataSpec", "WorkersSpec", "TargetSpec", "BudgetSpec", "StartSpec", "ProbeSpec", "SearchSpec", "NetworkSpec",
@@ -36,7 +37,7 @@ MAX_JOBS = 64
 MODELS = ("logistic_nonconvex", "least_squares", "softmax", "mlp", "plugin")
 OBJECTIVES = ("bits", "seconds", "front")
 #: ``prefer``: the point of the front the config holds (bittune.front.choose).
-PREFER = ("bits", "seconds", "balanced")
+PREFER = tuple(PREFER_RULES)
 METHOD_NAMES = ("gd", "dcgd", "diana", "marina", "pp_marina", "vr_marina", "ef21")
 COMPRESSOR_NAMES = ("identity", "rand_k", "top_k", "dither", "natural", "natural_dither", "perm_k")
 SPLITS = ("iid", "by_label", "dirichlet", "column")

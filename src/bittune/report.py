@@ -125,7 +125,7 @@ def _reached_all(t) -> bool:
 
 def _completed(study) -> list:
     return sorted((t for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
-                   if trial_value(t) is not None and math.isfinite(trial_value(t))), key=lambda t: t.number)
+                   if (v := trial_value(t)) is not None and math.isfinite(v)), key=lambda t: t.number)
 
 
 def search_history(study) -> dict:

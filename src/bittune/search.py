@@ -410,13 +410,11 @@ class Objective:
         cap, monitor = plan.cap, plan.monitor
         # Before any trial has reached the target there is no cap; a miss must still score above
         # every possible reach, so its penalty starts from the most a reach could cost.
-        floor = cap if cap is not None else self._most_a_reach_costs()
-        if self.front:
+        floor = cap if cap is not None else self._most_a_reach_costs()  # a front study has no cap
+        value, per_seed = score(runs, target=self.target, cap=floor, cost=cost_function(self.network))
+        if self.front:  # [bits, seconds]: bits scored with the bits floor
             bits_floor = self.max_bits if self.max_bits is not None else self._most_a_reach_costs(bits=True)
-            value = [score(runs, target=self.target, cap=bits_floor)[0]]
-            floor = self._most_a_reach_costs()
-        value_s, per_seed = score(runs, target=self.target, cap=floor, cost=cost_function(self.network))
-        value = value + [value_s] if self.front else value_s
+            value = [score(runs, target=self.target, cap=bits_floor)[0], value]
         if self.network is not None:
             trial.set_user_attr("seconds", [float(self.network.seconds(r)) for r in runs])
         trial.set_user_attr("status", [r.status for r in runs])

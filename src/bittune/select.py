@@ -47,6 +47,7 @@ from .front import FRONT_TRIALS, choose, non_dominated, thin
 from .search import SEED_LADDER, Candidate, Space, score, search_seeds, stall_window
 from .parallel import start_batch
 from .simulate import Trajectory
+from .transfer import resampled_workspace
 
 __all__ = ["Evaluation", "Selection", "Gain", "validation_seeds", "evaluate", "select", "gd_ladder",
            "paired_gain", "GAIN_LEVEL", "GAIN_RESAMPLES", "pick", "transfer_entry"]
@@ -387,8 +388,6 @@ def select(ws, space: Space, study, network=None, log=None) -> Selection:
     # Tuned GD: all ladder steps x search seeds in one batch, beside the finalists when --jobs > 1.
     pending_ladder = start_evaluate(ws, ladder_cands, search_seeds(spec), network, jobs=spec.jobs,
                                     task=base_task.part())
-    from .transfer import resampled_workspace
-
     # The transfer check: the finalists on the data resample, same seeds (in another process with --jobs > 1).
     ws_r = resampled_workspace(ws)
     tr_task = start_task(log, "transfer check", len(cands) * S, "trajectories")

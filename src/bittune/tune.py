@@ -25,6 +25,7 @@ from optuna.trial import TrialState
 from . import __version__
 from .config import SEED_DIGITS, UNITS, sig, write_config
 from .errors import EXIT, InputError
+from .front import FRONT_SIZE, PREFER_RULES
 from .job import Job, data_digest, load_job
 from .probe import probe_workspace
 from .progress import Progress
@@ -579,8 +580,6 @@ def _transfer_section(sel: Selection) -> dict:
 
 def _front_section(sel: Selection) -> dict:
     """The validated front: at most front.FRONT_SIZE settings with their mean bits and seconds on the fresh seeds."""
-    from .front import FRONT_SIZE
-
     moved = {id(e): r for e, r in zip(sel.finalists, sel.resampled)}
     points = []
     for e in sel.front:
@@ -599,11 +598,6 @@ def _front_section(sel: Selection) -> dict:
                     f"that point's after the back-off (expected holds its figures)",
             "points": points}
 
-
-#: How ``prefer`` picks the front point (bittune.front.choose).
-PREFER_RULES = {"bits": "least mean bits per worker", "seconds": "fewest mean simulated seconds",
-                "balanced": "least product mean bits x mean seconds (unit-free; a 1% saving of one cost is "
-                            "worth a 1% loss of the other)"}
 
 
 def _gd_section(sel: Selection, prep: Prepared) -> dict:
