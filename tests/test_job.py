@@ -247,7 +247,7 @@ ERRORS = [
     (dict(probe={"runs": 0}), "probe.runs: must be an integer in [1, 100], got 0"),
     (dict(probe={"power_iters": 10**23}), "probe.power_iters: must be an integer in [1, 10000], got 100000000000000000000000"),
     (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, objective, plugin, data, workers, "
-                  "target, budget, mlp, network, assume, engine, probe, search, start)"),
+                  "target, budget, mlp, network, assume, engine, probe, search, start, downlink)"),
     (dict(objective="joules"), "objective: must be one of bits, seconds, got 'joules'"),
     (dict(network={"uplink_bandwidth": 0}), "network.uplink_bandwidth: must be a number > 0, got 0"),
     (dict(search={"methods": ["marina", "sgd"]}),

@@ -350,6 +350,7 @@ class Objective:
     network: object = None  # a NetworkModel for the objective "seconds"; None: bits
     loss_ref: float | None = None  # f_ref of a loss-gap target (then ``target`` is the gap); None: ||grad f||^2
     precision: str = "float64"  # the job's engine.precision
+    downlink: dict | None = None  # the job's downlink.compressor spec; None: dense broadcast
     _best: float = field(default=math.inf, repr=False)
 
     def __call__(self, trial: optuna.Trial) -> float:
@@ -358,8 +359,13 @@ class Objective:
                         step_size=plan.candidate.step_size, seeds=self.seeds, target=self.target,
                         max_rounds=self.max_rounds, x0=self.x0, params=plan.candidate.params(),
                         max_bits_per_worker=self.bits_cap(plan.cap), stall_window=plan.window,
-                        monitor=plan.monitor, loss_ref=self.loss_ref, precision=self.precision)
+                        monitor=plan.monitor, loss_ref=self.loss_ref, precision=self.precision,
+                        **self.link_kwargs())
         return self.finish(trial, plan, runs)
+
+    def link_kwargs(self) -> dict:
+        """simulate()'s network and downlink arguments for this objective."""
+        return link_kwargs(self.problem, self.network, self.downlink)
 
     def plan(self, trial: optuna.Trial, cap: float | None) -> "TrialPlan":
         """Draw ``trial``'s candidate and set up what its simulation needs (cap: the study's cost cap)."""
@@ -381,9 +387,12 @@ class Objective:
                 passes = p + (1.0 - p) * float(np.mean(2.0 * cand.minibatch / self.problem.worker_sizes))
             # The objective's one seconds formula, with the dense broadcast of every round.
             cost_at = lambda k, bits: net.seconds_at(k, passes * k, bits, dense_bits(d) * k)  # noqa: E731
+            if net.uneven:  # the engine hands the monitor its round-by-round seconds
+                cost_at = lambda k, secs: secs  # noqa: E731
         # Checkpoints start at the cost of four dense rounds and grow geometrically.
         monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at,
-                                start=cost_at(4, 4 * 32.0 * d))
+                                start=self.network.seconds_at(4, 4, 4 * 32.0 * d, 4 * dense_bits(d))
+                                if self.network is not None and self.network.uneven else cost_at(4, 4 * 32.0 * d))
         return TrialPlan(cand, comp, window, monitor, cap)
 
     def bits_cap(self, cap: float | None) -> float | None:
@@ -435,6 +444,18 @@ class Objective:
         caps = [c for c in (job_cap, self.space.spec.bits_cap_factor * best) if c is not None]
         caps = [c for c in caps if math.isfinite(c)]
         return min(caps) if caps else None
+
+
+def link_kwargs(problem, network, downlink: dict | None) -> dict:
+    """simulate()'s ``network`` (an uneven NetworkModel, else left out) and ``downlink`` (the
+    server's compressor built from the job's spec, else left out) keyword arguments."""
+    out = {}
+    if network is not None and network.uneven:
+        out["network"] = network
+    if downlink is not None:
+        out["downlink"] = make_compressor(downlink, problem.dim, key="downlink.compressor",
+                                          n_workers=problem.n_workers)
+    return out
 
 
 class _PruneMonitor:

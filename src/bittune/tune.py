@@ -29,7 +29,7 @@ from .job import Job, data_digest, load_job
 from .probe import probe_workspace
 from .progress import Progress
 from .report import write_report
-from .search import (COUNTED, Objective, Space, enqueue_seeds, fail_stale_trials, mask_url, open_storage,
+from .search import (COUNTED, Objective, link_kwargs, Space, enqueue_seeds, fail_stale_trials, mask_url, open_storage,
                      open_study, run_trials, search_seeds)
 from .select import GAIN_RESAMPLES, Selection, select
 from .workspace import open_job
@@ -128,6 +128,7 @@ def prepare(job_path, overrides: dict, log, *, allow_code: bool = False) -> Prep
              f"({report.oracle_calls} oracle calls, {report.seconds:.1f} s)")
     vectors, _ = ws.problem.local_grads(report.points)
     space = Space(job.search, constants, target=ws.theory_target(constants.L), contraction_vectors=vectors)
+    link_kwargs(ws.problem, None, job.downlink)  # a downlink k above d: exit 2 before any trial
     return Prepared(job, ws, constants, report, space, overrides, network_model(job, ws))
 
 
@@ -142,8 +143,13 @@ def network_model(job: Job, ws):
     compute = net.compute_seconds
     if compute is None:
         compute = measure_compute_seconds(ws.problem, ws.x0)
+    workers = None
+    if net.workers is not None:  # uneven: a missing compute time is the measured one times its factor
+        workers = tuple((w["latency"], w["uplink_bandwidth"],
+                         compute * w["compute_scale"] if w["compute_seconds"] is None else w["compute_seconds"])
+                        for w in net.workers)
     return NetworkModel(latency=net.latency, uplink_bandwidth=net.uplink_bandwidth,
-                        downlink_bandwidth=net.downlink_bandwidth, compute_seconds=compute)
+                        downlink_bandwidth=net.downlink_bandwidth, compute_seconds=compute, workers=workers)
 
 
 def respace(prep: Prepared, overrides: dict) -> Prepared:
@@ -224,7 +230,7 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
             objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                                   max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                                   seeds=search_seeds(spec), worker=0, network=prep.network, loss_ref=ws.loss_ref,
-                                  precision=job.engine.precision)
+                                  precision=job.engine.precision, downlink=job.downlink)
             run_trials(open_study(store, name, sampler_seed=sampler_seeds[0], pruner=spec.pruner), objective,
                        budget=spec.trials)
         else:
@@ -381,7 +387,7 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int | None =
         objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                               max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                               seeds=search_seeds(job.search), worker=index, network=network, loss_ref=ws.loss_ref,
-                              precision=job.engine.precision)
+                              precision=job.engine.precision, downlink=job.downlink)
         return run_trials(study, objective, budget=budget or int(attrs.get("budget", job.search.trials)))
 
 
