@@ -5,8 +5,13 @@ docs/design.md "Round time with uneven workers"; docs/theory.md §2.11.
 
 from __future__ import annotations
 
+import subprocess
+import sys
+from pathlib import Path
+
 import numpy as np
 import pytest
+import yaml
 
 from bittune.compressors import make_compressor
 from bittune.cost import NetworkModel
@@ -15,7 +20,9 @@ from bittune.methods import dense_bits
 from bittune.problems.quadratic import Quadratic
 from bittune.simulate import simulate
 
-from conftest import tune_cli_in
+from bittune.cli import main
+from bittune.tune import tune
+from conftest import Quiet, tune_cli_in
 from test_job import _problems, _valid, folder  # noqa: F401  (the fixture)
 
 D = 4
@@ -204,3 +211,31 @@ def test_cli_refuses_a_zero_bandwidth_worker_and_writes_nothing(tmp_path):
     assert proc.returncode == 2, proc.stderr
     assert "network.workers[1].uplink_bandwidth: must be a number > 0, got 0" in proc.stderr
     assert unchanged  # no config, no run folder
+
+
+def test_tune_with_stragglers_and_a_compressed_downlink_writes_shares_and_downlink(tmp_path):
+    """End to end on the generated demo data: two stragglers at 1/10 speed and EF21-BC. The config
+    records the time shares (they sum to 1: every round's seconds go to one worker) and the
+    downlink; replaying the config on its validation seeds gives back its expected bits."""
+    root = Path(__file__).resolve().parents[1]
+    subprocess.run([sys.executable, str(root / "examples/frost/make_data.py"), "--out", str(tmp_path / "s.svm"),
+                    "--nights", "40"], check=True, capture_output=True)
+    (tmp_path / "job.yaml").write_text(
+        "data: s.svm\nmodel: logistic_nonconvex\nregularization: 0.01\nobjective: seconds\n"
+        "workers: {count: 6, split: iid}\ntarget: {grad_norm_sq: 1e-2}\nbudget: {max_rounds: 2000}\n"
+        "network: {compute_seconds: 0.001, workers: {stragglers: 2, slowdown: 10}}\n"
+        "downlink: {compressor: 'top_k:8'}\n"
+        "search: {methods: [ef21], compressors: [top_k], trials: 4, seeds: 2, validation_seeds: 2, finalists: 1}\n")
+    tune(tmp_path / "job.yaml", output=tmp_path / "c.yaml", progress=Quiet())
+    cfg = yaml.safe_load((tmp_path / "c.yaml").read_text())
+    shares = cfg["network_shares"]["slowest_share"]
+    assert len(shares) == 6 and abs(sum(shares) - 1.0) < 1e-3  # rounded to 4 digits each
+    assert sum(shares[4:]) > 0.99  # the stragglers (the last two) set the pace
+    assert cfg["downlink"]["compressor"] == {"name": "top_k", "k": 8}
+    d = cfg["problem"]["dimension"]
+    rounds = cfg["expected"]["rounds"]
+    # Hand count: a dense first broadcast, then 8 (32 + ceil(log2 d)) bits a round (docs/theory.md §1.2).
+    per = 8 * (32 + int(np.ceil(np.log2(d))))
+    assert cfg["downlink"]["mean_bits_per_worker"] == pytest.approx(
+        np.mean([32 * d + per * (r - 1) for r in rounds]), rel=1e-3)  # config figures keep 4 digits
+    assert main(["replay", str(tmp_path / "c.yaml"), "--job", str(tmp_path / "job.yaml")]) == 0

@@ -31,6 +31,7 @@ from optuna.storages.journal import JournalFileBackend
 from optuna.trial import TrialState
 
 from .compressors import COMPRESSORS, make_compressor
+from .job import BIDIRECTIONAL
 from .methods import dense_bits
 from .constants import Constants
 from .cost import cost_function
@@ -360,12 +361,12 @@ class Objective:
                         max_rounds=self.max_rounds, x0=self.x0, params=plan.candidate.params(),
                         max_bits_per_worker=self.bits_cap(plan.cap), stall_window=plan.window,
                         monitor=plan.monitor, loss_ref=self.loss_ref, precision=self.precision,
-                        **self.link_kwargs())
+                        **self.link_kwargs(plan.candidate.method))
         return self.finish(trial, plan, runs)
 
-    def link_kwargs(self) -> dict:
-        """simulate()'s network and downlink arguments for this objective."""
-        return link_kwargs(self.problem, self.network, self.downlink)
+    def link_kwargs(self, method: str) -> dict:
+        """simulate()'s network and downlink arguments for this objective and ``method``."""
+        return link_kwargs(self.problem, self.network, self.downlink, method)
 
     def plan(self, trial: optuna.Trial, cap: float | None) -> "TrialPlan":
         """Draw ``trial``'s candidate and set up what its simulation needs (cap: the study's cost cap)."""
@@ -446,13 +447,15 @@ class Objective:
         return min(caps) if caps else None
 
 
-def link_kwargs(problem, network, downlink: dict | None) -> dict:
+def link_kwargs(problem, network, downlink: dict | None, method: str | None = None) -> dict:
     """simulate()'s ``network`` (an uneven NetworkModel, else left out) and ``downlink`` (the
-    server's compressor built from the job's spec, else left out) keyword arguments."""
+    server's compressor built from the job's spec, else left out) keyword arguments. A method
+    without a bidirectional form (a baseline such as gd; the job admits only bidirectional
+    search methods with a downlink) keeps the dense broadcast."""
     out = {}
     if network is not None and network.uneven:
         out["network"] = network
-    if downlink is not None:
+    if downlink is not None and (method is None or method in BIDIRECTIONAL):
         out["downlink"] = make_compressor(downlink, problem.dim, key="downlink.compressor",
                                           n_workers=problem.n_workers)
     return out

@@ -99,6 +99,9 @@ class Evaluation:
             **({} if self.network is None else {
                 "mean_seconds": self.mean_cost, "seconds": [float(v) for v in self.costs],
                 "std_seconds": float(self.costs.std(ddof=1)) if len(b) > 1 else 0.0}),
+            "mean_downlink_bits_per_worker": float(np.mean([r.downlink_bits for r in self.runs])),
+            **({} if self.runs[0].worker_shares is None else {
+                "worker_shares": [float(v) for v in np.mean([r.worker_shares for r in self.runs], axis=0)]}),
         }
 
 
@@ -188,7 +191,7 @@ def _batches(ws, candidates: list[Candidate], seeds: list[int], network=None) ->
                               x0=ws.x0, params=params, max_bits_per_worker=job.budget.max_bits_per_worker,
                               stall_window=stall_window(first.method, params.get("sync_probability")),
                               loss_ref=ws.loss_ref, precision=job.engine.precision,
-                              **link_kwargs(ws.problem, network, getattr(job, "downlink", None)))))
+                              **link_kwargs(ws.problem, network, getattr(job, "downlink", None), first.method))))
     return out
 
 

@@ -409,6 +409,9 @@ def trajectory_curves(runs, *, loss_gap: bool) -> list[dict]:
                     "gradient_passes": r.passes_curve[keep].tolist(), "grad_norm_sq": r.grad_norm_sq[keep].tolist()})
         if loss_gap:
             out[-1]["loss_gap"] = r.progress[keep].tolist()  # f(x^k) - f_ref
+        if r.seconds_curve is not None:  # an uneven network: the engine's round-by-round seconds
+            out[-1]["seconds"] = r.seconds_curve[keep].tolist()
+            out[-1]["worker_shares"] = r.worker_shares.tolist()
     return out
 
 
@@ -519,6 +522,14 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str, output:
         doc["expected"].update(mean_seconds=sig(w["mean_seconds"]), std_seconds=sig(w["std_seconds"]),
                                seconds=w["seconds"], network=prep.network.to_dict())
         doc["expected"]["theory_baseline"]["mean_seconds"] = sig(b["mean_seconds"])
+    if "worker_shares" in w:  # an uneven network (docs/design.md, "Round time with uneven workers")
+        doc["network_shares"] = {
+            "slowest_share": sig(w["worker_shares"]),
+            "note": "per worker, the fraction of the chosen run's simulated seconds in rounds where it was the "
+                    "slowest worker the server waited for (mean over expected.validation_seeds)"}
+    if job.downlink is not None:  # EF21-BC (docs/theory.md §2.11)
+        doc["downlink"] = {"compressor": dict(job.downlink),
+                           "mean_bits_per_worker": sig(w["mean_downlink_bits_per_worker"])}
     if sel.gd is not None:
         doc["baseline"] = _gd_section(sel, prep)
     doc["gains"] = {"objective": job.objective, "validation_seeds": len(sel.seeds),
