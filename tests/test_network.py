@@ -239,3 +239,26 @@ def test_tune_with_stragglers_and_a_compressed_downlink_writes_shares_and_downli
     assert cfg["downlink"]["mean_bits_per_worker"] == pytest.approx(
         np.mean([32 * d + per * (r - 1) for r in rounds]), rel=1e-3)  # config figures keep 4 digits
     assert main(["replay", str(tmp_path / "c.yaml"), "--job", str(tmp_path / "job.yaml")]) == 0
+
+
+def test_the_monitor_sees_the_seconds_the_objective_counts():
+    """Pruning compares trials at equal cost: with a network the engine hands the monitor the
+    seconds so far, the same numbers as the trajectory's seconds curve (uneven) or the cost
+    formula at that round (even; here EF21-BC, whose broadcast is not dense)."""
+    seen = []
+
+    def monitor(k, index, cost, metric):
+        seen.append((k, cost.copy()))
+        return False
+
+    (r,) = simulate(_quadratic(), method="marina", compressor=make_compressor("rand_k:1", D), step_size=0.01,
+                    seeds=[1], target=0.0, max_rounds=5, network=NET, monitor=monitor)
+    np.testing.assert_array_equal([c[0] for _, c in seen], r.seconds_curve[1:])
+    even = NetworkModel(0.05, 1e3, 1e4, 0.01)
+    seen.clear()
+    (r,) = simulate(_quadratic(), method="ef21", compressor=make_compressor("top_k:1", D), step_size=0.01,
+                    seeds=[1], target=0.0, max_rounds=5, network=even, monitor=monitor,
+                    downlink=make_compressor("top_k:2", D))
+    assert [c[0] for _, c in seen] == [float(even.seconds_at(k, r.passes_curve[k], r.uplink_curve[k],
+                                                             r.downlink_curve[k])) for k, _ in seen]
+    assert seen[-1][1][0] == even.seconds(r)

@@ -388,12 +388,11 @@ class Objective:
                 passes = p + (1.0 - p) * float(np.mean(2.0 * cand.minibatch / self.problem.worker_sizes))
             # The objective's one seconds formula, with the dense broadcast of every round.
             cost_at = lambda k, bits: net.seconds_at(k, passes * k, bits, dense_bits(d) * k)  # noqa: E731
-            if net.uneven:  # the engine hands the monitor its round-by-round seconds
-                cost_at = lambda k, secs: secs  # noqa: E731
         # Checkpoints start at the cost of four dense rounds and grow geometrically.
-        monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at,
-                                start=self.network.seconds_at(4, 4, 4 * 32.0 * d, 4 * dense_bits(d))
-                                if self.network is not None and self.network.uneven else cost_at(4, 4 * 32.0 * d))
+        start = cost_at(4, 4 * 32.0 * d)
+        if self.network is not None and "network" in self.link_kwargs(cand.method):
+            cost_at = lambda k, secs: secs  # noqa: E731  (the engine hands the monitor its seconds)
+        monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at, start=start)
         return TrialPlan(cand, comp, window, monitor, cap)
 
     def bits_cap(self, cap: float | None) -> float | None:
@@ -431,7 +430,12 @@ class Objective:
         if self.network is None:
             return float(bits)
         rounds = self.max_rounds + 1
-        return float(self.network.seconds_at(rounds, 2.0 * rounds, bits, dense_bits(d) * rounds))
+        # A compressed broadcast's message obeys the same bound; on an uneven network one worker may
+        # send up to n messages a round (a PP-MARINA client drawn r <= n times), and the bound is
+        # the slowest worker's total (cost.NetworkModel.seconds_at).
+        down = bits if self.downlink is not None else dense_bits(d) * rounds
+        up = bits * self.problem.n_workers if self.network.uneven else bits
+        return float(self.network.seconds_at(rounds, 2.0 * rounds, up, down))
 
     def _cap(self, study: optuna.Study) -> float | None:
         """Cost cap: bits_cap_factor x the best all-seeds-reached value so far (and the job's bit cap,
@@ -453,11 +457,11 @@ def link_kwargs(problem, network, downlink: dict | None, method: str | None = No
     without a bidirectional form (a baseline such as gd; the job admits only bidirectional
     search methods with a downlink) keeps the dense broadcast."""
     out = {}
-    if network is not None and network.uneven:
-        out["network"] = network
     if downlink is not None and (method is None or method in BIDIRECTIONAL):
         out["downlink"] = make_compressor(downlink, problem.dim, key="downlink.compressor",
                                           n_workers=problem.n_workers)
+    if network is not None and (network.uneven or "downlink" in out):
+        out["network"] = network  # the engine's seconds: what a compressed broadcast or uneven links need
     return out
 
 

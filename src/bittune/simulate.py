@@ -133,10 +133,10 @@ def simulate(
     results (curves, last iterates) are float64. Bits do not depend on it
     except through value-dependent message sizes (Top-K ties, dithering nnz).
 
-    ``network`` (a cost.NetworkModel) matters only when it is uneven: then the engine sums
-    each round's seconds (NetworkModel.round_seconds, waiting for the workers the method
-    waited for) into ``Trajectory.seconds_curve``, and ``monitor`` receives those seconds in
-    place of the uplink bits. The broadcast is dense unless ``downlink`` is the server's
+    ``network`` (a cost.NetworkModel; None: bits) makes ``monitor`` receive simulated seconds
+    in place of the uplink bits. An uneven one also makes the engine sum each round's seconds
+    (NetworkModel.round_seconds, waiting for the workers the method waited for) into
+    ``Trajectory.seconds_curve``; an even one changes no trajectory. The broadcast is dense unless ``downlink`` is the server's
     compressor (a bidirectional method, docs/theory.md §2.11).
     """
     seeds = np.atleast_1d(np.asarray(seeds, dtype=np.int64))
@@ -250,7 +250,13 @@ def simulate(
             row[active] = total[active]
             hist.append(row)
         if monitor is not None:
-            verdict = monitor(k + 1, active, (secs if uneven else up)[active], metric)
+            if uneven:
+                cost = secs[active]
+            elif network is not None:  # even: the cost formula at this round, the broadcast as counted
+                cost = network.seconds_at(k + 1, passes[active], up[active], down[active])
+            else:
+                cost = up[active]
+            verdict = monitor(k + 1, active, cost, metric)
             if np.ndim(verdict) == 0:
                 stop = stop or bool(verdict)
             else:
