@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
+
 import numpy as np
 import pytest
 
@@ -92,3 +95,16 @@ def journal_study(run_dir):
     if not summaries:
         return None
     return optuna.load_study(study_name=summaries[0].study_name, storage=storage)
+
+
+def tune_cli_in(folder, job_text: str):
+    """Write ``job_text`` to folder/job.yaml and run ``bittune tune`` on it in a subprocess (output
+    folder/out/config.yaml, 2 trials). Returns the process and whether the folder's files are as
+    before (nothing written)."""
+    (folder / "job.yaml").write_text(job_text)
+    (folder / "out").mkdir(exist_ok=True)  # outputs need an existing folder (README, "What bittune checks")
+    before = sorted(str(p.relative_to(folder)) for p in folder.rglob("*"))
+    proc = subprocess.run([sys.executable, "-m", "bittune.cli", "tune", str(folder / "job.yaml"),
+                           "-o", str(folder / "out" / "config.yaml"), "--trials", "2"],
+                          capture_output=True, text=True, timeout=300)
+    return proc, sorted(str(p.relative_to(folder)) for p in folder.rglob("*")) == before

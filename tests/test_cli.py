@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 
 from bittune.cli import main
+from conftest import tune_cli_in
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -186,14 +187,9 @@ def test_tune_on_degenerate_data_exits_2_and_writes_nothing(tmp_path):
     rng = np.random.default_rng(7)
     rows = "\n".join(f"1 1:{a:.3f} 2:{b:.3f}" for a, b in rng.normal(size=(8, 2)))
     (tmp_path / "one.svm").write_text(rows + "\n")
-    (tmp_path / "job.yaml").write_text("data: one.svm\nmodel: logistic_nonconvex\nworkers: {count: 2, split: iid}\n"
-                                       "target: {grad_norm_sq: 1e-3}\nbudget: {max_rounds: 100}\n")
-    (tmp_path / "out").mkdir()  # outputs need an existing folder (README, "What bittune checks")
-    before = sorted(str(p.relative_to(tmp_path)) for p in tmp_path.rglob("*"))
-    proc = subprocess.run([sys.executable, "-m", "bittune.cli", "tune", str(tmp_path / "job.yaml"),
-                           "-o", str(tmp_path / "out" / "config.yaml"), "--trials", "2"],
-                          capture_output=True, text=True, timeout=300)
+    proc, unchanged = tune_cli_in(tmp_path, "data: one.svm\nmodel: logistic_nonconvex\nworkers: {count: 2, split: iid}\n"
+                                            "target: {grad_norm_sq: 1e-3}\nbudget: {max_rounds: 100}\n")
     assert proc.returncode == 2, proc.stderr
     assert "one.svm: every label is 1 (8 rows): a classifier needs both classes" in proc.stderr
     assert proc.stdout == ""
-    assert sorted(str(p.relative_to(tmp_path)) for p in tmp_path.rglob("*")) == before  # no config, no run folder
+    assert unchanged  # no config, no run folder

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["trajectory_keys", "uniform", "random_bits", "random_words32", "STREAM"]
+__all__ = ["trajectory_keys", "uniform", "random_bits", "random_words32", "STREAM", "derived_keys"]
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _M1 = np.uint64(0xBF58476D1CE4E5B9)
@@ -33,6 +33,7 @@ STREAM = {
     "start": 4,
     "clients": 5,
     "minibatch": 6,
+    "downlink": 7,
 }
 
 
@@ -92,3 +93,9 @@ def uniform(keys: np.ndarray, round_: int, stream: int, shape: tuple[int, ...]) 
     out = x.astype(np.float64)
     out *= 1.0 / 9007199254740992.0  # 2^-53
     return out
+
+
+def derived_keys(keys: np.ndarray, stream: int) -> np.ndarray:
+    """Keys of a second, independent party of the same trajectories (the server's downlink
+    compressor): the SplitMix64 finaliser of key XOR a stream constant."""
+    return _mix(np.asarray(keys, dtype=np.uint64) ^ np.uint64((0x9E3779B97F4A7C15 * stream) % 2**64))

@@ -83,7 +83,7 @@ def simulate_group(objective, plans) -> list[list]:
                     target=objective.target, max_rounds=objective.max_rounds, x0=objective.x0, params=params,
                     max_bits_per_worker=objective.bits_cap(plans[0].cap), stall_window=window,
                     monitor=_SplitMonitor([p.monitor for p in plans], S), loss_ref=objective.loss_ref,
-                    precision=objective.precision)
+                    precision=objective.precision, **objective.link_kwargs(cands[0].method))
     return [runs[i * S:(i + 1) * S] for i in range(len(plans))]
 
 

@@ -73,7 +73,7 @@ PROBLEM = {"dimension": Param("int", low=1), "workers": Param("int", low=1)}
 #: ``baseline`` (tuned uncompressed GD), ``gains`` (over it and over theory, with intervals) and ``units``
 #: came later: configs without them load as before.
 FREE_SECTIONS = ("target", "expected", "baseline", "gains", "units", "constants", "provenance", "retune",
-                 "front", "transfer")
+                 "front", "transfer", "network_shares", "downlink")
 _KNOWN = ["bittune_config", *TOP, "compressor", "problem"]
 #: A section of one's own is a typo only this close to a known key (difflib ratio; 0.75 keeps
 #: `expectd` -> expected (0.93) and lets a `notes` section (0.6 to `units`) through; no source).

@@ -18,9 +18,12 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from bittune._yaml import (
     REQUIRED, Param, check_mapping, key_text, parse_yaml, read_bytes, show, unknown_key,
 )
+from bittune.compressors import parse_spec
 from bittune.errors import InputError
 from bittune.front import PREFER_RULES
 
@@ -95,6 +98,9 @@ class NetworkSpec:
     uplink_bandwidth: float
     downlink_bandwidth: float
     compute_seconds: float | None
+    #: Uneven network (network.workers): per worker a dict latency, uplink_bandwidth,
+    #: compute_seconds (None: measured) and compute_scale (the measured time's factor); None: even.
+    workers: tuple | None = None
 
 
 @dataclass(frozen=True)
@@ -175,6 +181,8 @@ class Job:
     assume: AssumeSpec = AssumeSpec(pl_mu=None)
     engine: EngineSpec = EngineSpec()
     prefer: str | None = None  # objective front: bits | seconds | balanced (bittune.front.choose)
+    #: The server's compressor spec (downlink.compressor, a parse_spec dict); None: dense broadcast.
+    downlink: dict | None = None
 
 
 #: Top-level keys that hold a single value ("" section).
@@ -271,6 +279,25 @@ SECTIONS: dict[str, dict[str, Param]] = {
         "file": Param("str"),
     },
 }
+#: One entry of a network.workers list; a missing key takes the network section's value.
+WORKER_LINK = {
+    "latency": Param("real", low=0),
+    "uplink_bandwidth": Param("real", low=0, closed="right"),
+    "compute_seconds": Param("real", low=0),
+}
+#: network.workers given as a draw (docs/design.md, "Round time with uneven workers"): speed
+#: factors s_i = exp(spread z_i), z_i ~ N(0, 1) from the seed, then the last ``stragglers``
+#: workers at s_i / slowdown; worker i has uplink bandwidth s_i x and compute time 1/s_i x the
+#: section's values.
+WORKER_DRAW = {
+    "stragglers": Param("int", low=0, default=0),
+    "slowdown": Param("real", low=1, default=10.0),
+    "spread": Param("real", low=0, default=0.0),
+    "seed": Param("int", low=0, default=0),
+}
+#: Methods with a published bidirectional form (a downlink compressor): docs/theory.md §2.11.
+BIDIRECTIONAL = ("ef21",)
+
 #: Sections whose absence is reported as ``<name>: required`` (others act as ``{}``).
 _REQUIRED_SECTIONS = ("data",)
 #: A plain string given for these sections stands for ``{key: string}``.
@@ -322,7 +349,7 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
         raise InputError(f"top level: must be a mapping of job sections, got {show(mapping)}",
                          source=source)
     problems: list[str] = []
-    known = list(TOP) + list(SECTIONS)
+    known = list(TOP) + list(SECTIONS) + ["downlink"]
     problems += [unknown_key(key_text(k), k, known) for k in mapping if k not in known]
     values = {"": check_mapping({k: mapping.get(k) for k in TOP}, TOP, prefix="", problems=problems)}
     for name, schema in SECTIONS.items():
@@ -333,6 +360,8 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
             continue
         if isinstance(raw, str) and name in _SHORTHAND:
             raw = {_SHORTHAND[name]: raw}
+        if name == "network" and isinstance(raw, dict) and "workers" in raw:
+            raw = {k: v for k, v in raw.items() if k != "workers"}  # checked by _check_workers
         if raw is not None and not isinstance(raw, dict):
             problems.append(f"{name}: must be a mapping, got {show(raw)}")
             values[name] = {}
@@ -342,6 +371,9 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
              for k, v in mapping[s].items() if v is not None}
     data, start = _check_data(values, base_dir, problems), _check_start(values, base_dir, problems)
     _check_target(mapping.get("target"), values, problems)
+    net_raw = mapping.get("network")
+    links = _check_workers(net_raw.get("workers") if isinstance(net_raw, dict) else None, values, problems)
+    downlink = _check_downlink(mapping.get("downlink"), values, problems)
     model = values[""].get("model")
     if values["engine"].get("precision") == "float32" and model is not None and model not in _FLOAT32_MODELS:
         problems.append(f"engine.precision: float32 is available for the models {', '.join(_FLOAT32_MODELS)}, "
@@ -370,10 +402,77 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
         search=SearchSpec(**values["search"]), objective=top["objective"],
         prefer=top["prefer"] or "balanced" if top["objective"] == "front" else None,
         model_options=_model_options(top, values, base_dir),
-        network=NetworkSpec(**values["network"]),
+        network=NetworkSpec(**values["network"], workers=links), downlink=downlink,
         raw=deepcopy(mapping), digest=digest, assume=AssumeSpec(**values["assume"]),
         engine=EngineSpec(**values["engine"]),
     )
+
+
+def _check_workers(raw, values: dict, problems: list[str]) -> tuple | None:
+    """network.workers: a list of one link per worker, or a draw (WORKER_DRAW); None when absent."""
+    if raw is None:
+        return None
+    net, n = values["network"], values["workers"].get("count")
+    if values[""].get("objective") != "seconds":
+        warnings.warn("network.workers: ignored unless objective is seconds", UserWarning, stacklevel=3)
+    base = {k: net.get(k) for k in WORKER_LINK}
+    if isinstance(raw, list):
+        if n is not None and len(raw) != n:
+            problems.append(f"network.workers: must list one entry per worker ({n}, workers.count), "
+                            f"got {len(raw)}")
+            return None
+        out = []
+        for i, entry in enumerate(raw):
+            key = f"network.workers[{i}]"
+            if not isinstance(entry, dict):
+                problems.append(f"{key}: must be a mapping of {', '.join(WORKER_LINK)}, got {show(entry)}")
+                continue
+            got = check_mapping(entry, WORKER_LINK, prefix=f"{key}.", problems=problems)
+            out.append({**base, **{k: v for k, v in got.items() if v is not None}, "compute_scale": 1.0})
+        return tuple(out)
+    if not isinstance(raw, dict):
+        problems.append(f"network.workers: must be a list of per-worker links or a mapping of "
+                        f"{', '.join(WORKER_DRAW)}, got {show(raw)}")
+        return None
+    got = check_mapping(raw, WORKER_DRAW, prefix="network.workers.", problems=problems)
+    if n is None or len(got) < len(WORKER_DRAW) or None in (base["latency"], base["uplink_bandwidth"]):
+        return None
+    if got["stragglers"] > n:
+        problems.append(f"network.workers.stragglers: at most the {n} workers (workers.count), "
+                        f"got {got['stragglers']}")
+        return None
+    speed = np.exp(got["spread"] * np.random.default_rng(got["seed"]).standard_normal(n))
+    speed[n - got["stragglers"]:] /= got["slowdown"]
+    out = []
+    for s in speed.tolist():
+        c = base["compute_seconds"]
+        out.append({"latency": base["latency"], "uplink_bandwidth": base["uplink_bandwidth"] * s,
+                    "compute_seconds": None if c is None else c / s, "compute_scale": 1.0 / s})
+    return tuple(out)
+
+
+def _check_downlink(raw, values: dict, problems: list[str]) -> dict | None:
+    """downlink: {compressor: SPEC}, for search methods with a bidirectional form only."""
+    if raw is None:
+        return None
+    if not isinstance(raw, dict):
+        problems.append(f"downlink: must be a mapping with the key compressor, got {show(raw)}")
+        return None
+    problems.extend(unknown_key("downlink." + key_text(k), k, ["compressor"]) for k in raw if k != "compressor")
+    if raw.get("compressor") is None:
+        problems.append("downlink.compressor: required")
+        return None
+    try:
+        spec = parse_spec(raw["compressor"], key="downlink.compressor")
+    except InputError as exc:
+        problems.extend(exc.problems)
+        return None
+    others = [m for m in values["search"].get("methods") or () if m not in BIDIRECTIONAL]
+    if others:
+        problems.append(f"downlink.compressor: only {', '.join(BIDIRECTIONAL)} has a bidirectional form; "
+                        f"search.methods also lists {', '.join(others)} (drop them or the downlink)")
+        return None
+    return spec
 
 
 def _model_options(top: dict, values: dict, base_dir: Path) -> dict:

@@ -12,11 +12,12 @@ import math
 
 import numpy as np
 
-from .compressors import make_compressor
+from .compressors import make_compressor, parse_spec
+from .errors import InputError
 from .config import Config, check_config_fits
 from .job import Job, data_digest
 from .simulate import Trajectory, simulate
-from .search import SYNCED, stall_window
+from .search import SYNCED, link_kwargs, stall_window
 from .workspace import Workspace
 
 __all__ = ["replay", "summarize", "stored_reference", "config_seeds", "check_not_swapped"]
@@ -75,7 +76,19 @@ def replay(ws: Workspace, cfg: Config, *, seeds, source: str = "config") -> list
                     target=ws.target, max_rounds=ws.job.budget.max_rounds, x0=ws.x0, params=params,
                     max_bits_per_worker=ws.job.budget.max_bits_per_worker, loss_ref=ws.loss_ref,
                     stall_window=stall_window(cfg.method, params.get("sync_probability")),
-                    precision=cfg.precision or "float64")  # as tuned, whatever the job says now
+                    precision=cfg.precision or "float64",  # as tuned, whatever the job says now
+                    **link_kwargs(p, None, config_downlink(cfg, source), cfg.method))
+
+
+def config_downlink(cfg: Config, source: str = "config") -> dict | None:
+    """The server's compressor spec a config was tuned with (its ``downlink`` section), else None:
+    EF21-BC (docs/theory.md §2.11) replays with the broadcast it was tuned on."""
+    sec = cfg.extra.get("downlink")
+    if sec is None:
+        return None
+    if not isinstance(sec, dict) or sec.get("compressor") is None:
+        raise InputError(f"{source}: downlink.compressor: required in a downlink section")
+    return parse_spec(sec["compressor"], key="downlink.compressor")
 
 
 def stored_reference(cfg: Config, job: Job) -> dict | None:

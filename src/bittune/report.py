@@ -60,11 +60,22 @@ def target_info(summary: dict) -> dict:
 def seconds_curve(summary: dict, curve: dict) -> np.ndarray:
     """Simulated seconds at a summary curve's recorded rounds, by the objective's own formula
     (cost.NetworkModel.seconds_curve: latency, compute per gradient pass, uplink and downlink
-    bits over their bandwidths), so the last point is the trajectory's objective value."""
+    bits over their bandwidths), so the last point is the trajectory's objective value. An
+    uneven network's curve carries the engine's own seconds (cost.NetworkModel.round_seconds)."""
     from .cost import NetworkModel
 
+    if "seconds" in curve:
+        return np.asarray(curve["seconds"], dtype=np.float64)
     net = NetworkModel(**summary["network"])
     return net.seconds_curve(curve["rounds"], curve["gradient_passes"], curve["uplink_bits"], curve["downlink_bits"])
+
+
+def _worker_shares(summary: dict) -> list[float] | None:
+    """Mean over the winner's curves of each worker's slowest-time share (None: an even network)."""
+    curves = summary.get("curves", {}).get("winner") or [{}]
+    if "worker_shares" not in curves[0]:
+        return None
+    return [float(v) for v in np.mean([c["worker_shares"] for c in curves], axis=0)]
 
 
 def has_seconds(summary: dict) -> bool:
@@ -549,7 +560,15 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
                     f"{t['label']} against simulated seconds (the search's objective: latency {net['latency']:g} s "
                     f"+ compute {net['compute_seconds']:.3g} s per gradient pass + uplink bits / "
                     f"{net['uplink_bandwidth']:g} bit/s + downlink bits / {net['downlink_bandwidth']:g} bit/s per "
-                    "round), same seeds and band as above."))
+                    "round), same seeds and band as above."
+                    + (" Workers' links differ: a round lasts as long as the slowest worker it waits for." if
+                       net.get("workers") else "")))
+    shares = _worker_shares(s)
+    if shares is not None:
+        doc.append(("p", "Time shares (docs/design.md, \u201cRound time with uneven workers\u201d): the fraction of "
+                         "the chosen run's simulated seconds spent in rounds each worker was the slowest one waited "
+                         "for, mean over the fresh seeds: "
+                         + ", ".join(f"worker {i} {v:.1%}" for i, v in enumerate(shares)) + "."))
     if "front" in figures:
         fr = data["front"]
         doc += [("h", "Front"),

@@ -31,6 +31,7 @@ from optuna.storages.journal import JournalFileBackend
 from optuna.trial import TrialState
 
 from .compressors import COMPRESSORS, make_compressor
+from .job import BIDIRECTIONAL
 from .methods import dense_bits
 from .constants import Constants
 from .cost import cost_function
@@ -364,6 +365,7 @@ class Objective:
     #: objective front: the value is (bits, seconds) and no trial is pruned (Optuna prunes single-objective
     #: studies only; docs/design.md, "The front")
     front: bool = False
+    downlink: dict | None = None  # the job's downlink.compressor spec; None: dense broadcast
     _best: float = field(default=math.inf, repr=False)
 
     def __call__(self, trial: optuna.Trial) -> float:
@@ -372,8 +374,13 @@ class Objective:
                         step_size=plan.candidate.step_size, seeds=self.seeds, target=self.target,
                         max_rounds=self.max_rounds, x0=self.x0, params=plan.candidate.params(),
                         max_bits_per_worker=self.bits_cap(plan.cap), stall_window=plan.window,
-                        monitor=plan.monitor, loss_ref=self.loss_ref, precision=self.precision)
+                        monitor=plan.monitor, loss_ref=self.loss_ref, precision=self.precision,
+                        **self.link_kwargs(plan.candidate.method))
         return self.finish(trial, plan, runs)
+
+    def link_kwargs(self, method: str) -> dict:
+        """simulate()'s network and downlink arguments for this objective and ``method``."""
+        return link_kwargs(self.problem, self.network, self.downlink, method)
 
     def plan(self, trial: optuna.Trial, cap: float | None) -> "TrialPlan":
         """Draw ``trial``'s candidate and set up what its simulation needs (cap: the study's cost cap)."""
@@ -396,8 +403,11 @@ class Objective:
             # The objective's one seconds formula, with the dense broadcast of every round.
             cost_at = lambda k, bits: net.seconds_at(k, passes * k, bits, dense_bits(d) * k)  # noqa: E731
         # Checkpoints start at the cost of four dense rounds and grow geometrically.
-        monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at,
-                                start=cost_at(4, 4 * 32.0 * d), prune=not self.front)
+        start = cost_at(4, 4 * 32.0 * d)
+        if self.network is not None and "network" in self.link_kwargs(cand.method):
+            cost_at = lambda k, secs: secs  # noqa: E731  (the engine hands the monitor its seconds)
+        monitor = _PruneMonitor(trial, len(self.seeds), self.target, cost_at=cost_at, start=start,
+                                prune=not self.front)
         return TrialPlan(cand, comp, window, monitor, cap)
 
     def bits_cap(self, cap: float | None) -> float | None:
@@ -439,7 +449,12 @@ class Objective:
         if self.network is None or bits:
             return float(most)
         rounds = self.max_rounds + 1
-        return float(self.network.seconds_at(rounds, 2.0 * rounds, most, dense_bits(d) * rounds))
+        # A compressed broadcast's message obeys the same bound; on an uneven network one worker may
+        # send up to n messages a round (a PP-MARINA client drawn r <= n times), and the bound is
+        # the slowest worker's total (cost.NetworkModel.seconds_at).
+        down = most if self.downlink is not None else dense_bits(d) * rounds
+        up = most * self.problem.n_workers if self.network.uneven else most
+        return float(self.network.seconds_at(rounds, 2.0 * rounds, up, down))
 
     def _cap(self, study: optuna.Study) -> float | None:
         """Cost cap: bits_cap_factor x the best all-seeds-reached value so far (and the job's bit cap,
@@ -455,6 +470,20 @@ class Objective:
         caps = [c for c in (job_cap, self.space.spec.bits_cap_factor * best) if c is not None]
         caps = [c for c in caps if math.isfinite(c)]
         return min(caps) if caps else None
+
+
+def link_kwargs(problem, network, downlink: dict | None, method: str | None = None) -> dict:
+    """simulate()'s ``network`` (an uneven NetworkModel, else left out) and ``downlink`` (the
+    server's compressor built from the job's spec, else left out) keyword arguments. A method
+    without a bidirectional form (a baseline such as gd; the job admits only bidirectional
+    search methods with a downlink) keeps the dense broadcast."""
+    out = {}
+    if downlink is not None and (method is None or method in BIDIRECTIONAL):
+        out["downlink"] = make_compressor(downlink, problem.dim, key="downlink.compressor",
+                                          n_workers=problem.n_workers)
+    if network is not None and (network.uneven or "downlink" in out):
+        out["network"] = network  # the engine's seconds: what a compressed broadcast or uneven links need
+    return out
 
 
 class _PruneMonitor:

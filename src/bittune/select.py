@@ -44,7 +44,7 @@ from optuna.trial import TrialState
 
 from .compressors import make_compressor
 from .front import FRONT_TRIALS, choose, non_dominated, thin
-from .search import SEED_LADDER, Candidate, Space, score, search_seeds, stall_window
+from .search import SEED_LADDER, Candidate, Space, link_kwargs, score, search_seeds, stall_window
 from .parallel import start_batch
 from .simulate import Trajectory
 from .transfer import resampled_workspace
@@ -120,6 +120,9 @@ class Evaluation:
             **({} if self.network is None else {
                 "mean_seconds": self.mean_cost, "seconds": [float(v) for v in self.costs],
                 "std_seconds": float(self.costs.std(ddof=1)) if len(b) > 1 else 0.0}),
+            "mean_downlink_bits_per_worker": float(np.mean([r.downlink_bits for r in self.runs])),
+            **({} if self.runs[0].worker_shares is None else {
+                "worker_shares": [float(v) for v in np.mean([r.worker_shares for r in self.runs], axis=0)]}),
         }
 
 
@@ -199,7 +202,7 @@ def validation_seeds(spec) -> list[int]:
     return [1_000_000 + spec.seed * 1000 + j for j in range(spec.validation_seeds)]
 
 
-def _batches(ws, candidates: list[Candidate], seeds: list[int]) -> list[tuple[list[int], dict]]:
+def _batches(ws, candidates: list[Candidate], seeds: list[int], network=None) -> list[tuple[list[int], dict]]:
     """One engine batch per method and compressor: (candidate indices, simulate() keyword arguments)."""
     groups: dict[tuple, list[int]] = {}
     for i, c in enumerate(candidates):
@@ -216,7 +219,8 @@ def _batches(ws, candidates: list[Candidate], seeds: list[int]) -> list[tuple[li
                               seeds=np.tile(seeds, len(idx)), target=ws.target, max_rounds=job.budget.max_rounds,
                               x0=ws.x0, params=params, max_bits_per_worker=job.budget.max_bits_per_worker,
                               stall_window=stall_window(first.method, params.get("sync_probability")),
-                              loss_ref=ws.loss_ref, precision=job.engine.precision)))
+                              loss_ref=ws.loss_ref, precision=job.engine.precision,
+                              **link_kwargs(ws.problem, network, getattr(job, "downlink", None), first.method))))
     return out
 
 
@@ -242,7 +246,7 @@ def start_evaluate(ws, candidates: list[Candidate], seeds: list[int], network=No
     returns a function that waits for the evaluations and returns them. ``task`` is told of finished
     trajectories round by round in this process, and of a whole batch when it comes back from another."""
     S, pending, offset = len(seeds), [], 0
-    for idx, kwargs in _batches(ws, candidates, seeds):
+    for idx, kwargs in _batches(ws, candidates, seeds, network):
         size = len(idx) * S
         if task is not None and jobs == 1:
             kwargs = dict(kwargs, monitor=_Ticker(task, offset, size))

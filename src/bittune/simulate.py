@@ -57,6 +57,11 @@ class Trajectory:
     #: inputs, cost.NetworkModel.seconds_curve); their last entries are downlink_bits, gradient_passes.
     downlink_curve: np.ndarray | None = field(default=None, repr=False)
     passes_curve: np.ndarray | None = field(default=None, repr=False)
+    #: Uneven network only (simulate(network=...)): cumulative simulated seconds to reach x^k
+    #: (cost.NetworkModel.round_seconds summed), and per worker the share of those seconds it was
+    #: the slowest worker the round waited for (docs/design.md, "Round time with uneven workers").
+    seconds_curve: np.ndarray | None = field(default=None, repr=False)
+    worker_shares: np.ndarray | None = field(default=None, repr=False)
 
     def __post_init__(self) -> None:
         if self.progress is None:
@@ -97,6 +102,8 @@ def simulate(
     monitor=None,
     loss_ref: float | None = None,
     precision: str = "float64",
+    network=None,
+    downlink=None,
 ) -> list[Trajectory]:
     """Simulate ``len(seeds)`` trajectories of ``method`` at once.
 
@@ -125,6 +132,12 @@ def simulate(
     metric ||grad f||^2 is still summed in float64 (:func:`_norm_sq`), and
     results (curves, last iterates) are float64. Bits do not depend on it
     except through value-dependent message sizes (Top-K ties, dithering nnz).
+
+    ``network`` (a cost.NetworkModel; None: bits) makes ``monitor`` receive simulated seconds
+    in place of the uplink bits. An uneven one also makes the engine sum each round's seconds
+    (NetworkModel.round_seconds, waiting for the workers the method waited for) into
+    ``Trajectory.seconds_curve``; an even one changes no trajectory. The broadcast is dense unless ``downlink`` is the server's
+    compressor (a bidirectional method, docs/theory.md §2.11).
     """
     seeds = np.atleast_1d(np.asarray(seeds, dtype=np.int64))
     B, d, n = seeds.shape[0], problem.dim, problem.n_workers
@@ -138,7 +151,8 @@ def simulate(
     dtype = PRECISIONS[precision]
     keys_all = trajectory_keys(seeds)
     step_all = np.broadcast_to(np.asarray(step_size, dtype=dtype), (B,)).copy()
-    meth = make_method(method, compressor=compressor, n_workers=n, dim=d, batch=B, **(params or {}))
+    meth = make_method(method, compressor=compressor, n_workers=n, dim=d, batch=B, **(params or {}),
+                       **({} if downlink is None else {"downlink": downlink}))
     meth.bind(problem)
     x0 = np.zeros(d) if x0 is None else np.asarray(x0, dtype=np.float64)
     X = np.broadcast_to(x0.astype(dtype), (B, d)).copy()
@@ -162,6 +176,10 @@ def simulate(
     up_hist = [up.copy()]
     down_hist = [down.copy()]
     pass_hist = [passes.copy()]
+    uneven = network is not None and network.uneven
+    secs = np.zeros(B)
+    slow = np.zeros((B, n))  # seconds each worker was the slowest waited one (uneven network)
+    secs_hist = [secs.copy()]
     loss_log = [(0, active.copy(), loss0.mean(axis=1, dtype=np.float64))]
     out: dict[int, tuple[str, int]] = {}
     final_x = np.empty((B, d))
@@ -203,7 +221,13 @@ def simulate(
         used = meth.gradient_evals()
         evals[active] += sizes.mean() if used is None else used.mean(axis=1)
         passes[active] += 1.0 if used is None else (used / sizes).mean(axis=1)
-        down[active] += dense_bits(d)  # the server broadcasts one dense vector
+        sent = meth.downlink_bits()  # None: the server broadcasts one dense vector
+        down[active] += dense_bits(d) if sent is None else sent
+        if uneven:
+            per_pass = np.ones_like(bits) if used is None else used / sizes
+            t, who = network.round_seconds(bits, per_pass, meth.waited(), dense_bits(d) if sent is None else sent)
+            secs[active] += t
+            slow[active, who] += t
         want_loss = loss_every > 0 and (k + 1) % loss_every == 0
         # Overflow and NaN are expected on diverging trajectories: they are
         # caught by the divergence test above, not raised.
@@ -221,12 +245,18 @@ def simulate(
         row = np.full(B, np.nan)
         row[active] = gn
         gn_hist.append(row)
-        for hist, total in ((up_hist, up), (down_hist, down), (pass_hist, passes)):
+        for hist, total in ((up_hist, up), (down_hist, down), (pass_hist, passes), (secs_hist, secs)):
             row = np.full(B, np.nan)
             row[active] = total[active]
             hist.append(row)
         if monitor is not None:
-            verdict = monitor(k + 1, active, up[active], metric)
+            if uneven:
+                cost = secs[active]
+            elif network is not None:  # even: the cost formula at this round, the broadcast as counted
+                cost = network.seconds_at(k + 1, passes[active], up[active], down[active])
+            else:
+                cost = up[active]
+            verdict = monitor(k + 1, active, cost, metric)
             if np.ndim(verdict) == 0:
                 stop = stop or bool(verdict)
             else:
@@ -236,6 +266,7 @@ def simulate(
         loss_end = problem.local_losses(final_x).mean(axis=1)
     gn_hist = np.array(gn_hist)
     up_hist, down_hist, pass_hist = np.array(up_hist), np.array(down_hist), np.array(pass_hist)
+    secs_hist = np.array(secs_hist)
     f_hist = None if f_hist is None else np.array(f_hist)
     result = []
     for b in range(B):
@@ -262,6 +293,8 @@ def simulate(
                 progress=None if f_hist is None else f_hist[: rounds + 1, b] - loss_ref,
                 downlink_curve=down_hist[: rounds + 1, b].copy(),
                 passes_curve=pass_hist[: rounds + 1, b].copy(),
+                seconds_curve=secs_hist[: rounds + 1, b].copy() if uneven else None,
+                worker_shares=(slow[b] / secs[b] if secs[b] > 0 else slow[b]) if uneven else None,
             )
         )
     return result

@@ -30,8 +30,8 @@ from .job import Job, data_digest, load_job
 from .probe import probe_workspace
 from .progress import Progress
 from .report import write_report
-from .search import (COUNTED, FRONT_DIRECTIONS, Objective, Space, enqueue_seeds, fail_stale_trials, mask_url,
-                     open_storage, open_study, run_trials, search_seeds, trial_value)
+from .search import (COUNTED, FRONT_DIRECTIONS, Objective, Space, enqueue_seeds, fail_stale_trials, link_kwargs,
+                     mask_url, open_storage, open_study, run_trials, search_seeds, trial_value)
 from .select import GAIN_RESAMPLES, Selection, select, transfer_entry
 from .workspace import open_job
 
@@ -129,6 +129,7 @@ def prepare(job_path, overrides: dict, log, *, allow_code: bool = False) -> Prep
              f"({report.oracle_calls} oracle calls, {report.seconds:.1f} s)")
     vectors, _ = ws.problem.local_grads(report.points)
     space = Space(job.search, constants, target=ws.theory_target(constants.L), contraction_vectors=vectors)
+    link_kwargs(ws.problem, None, job.downlink)  # a downlink k above d: exit 2 before any trial
     return Prepared(job, ws, constants, report, space, overrides, network_model(job, ws))
 
 
@@ -143,8 +144,13 @@ def network_model(job: Job, ws):
     compute = net.compute_seconds
     if compute is None:
         compute = measure_compute_seconds(ws.problem, ws.x0)
+    workers = None
+    if net.workers is not None:  # uneven: a missing compute time is the measured one times its factor
+        workers = tuple((w["latency"], w["uplink_bandwidth"],
+                         compute * w["compute_scale"] if w["compute_seconds"] is None else w["compute_seconds"])
+                        for w in net.workers)
     return NetworkModel(latency=net.latency, uplink_bandwidth=net.uplink_bandwidth,
-                        downlink_bandwidth=net.downlink_bandwidth, compute_seconds=compute)
+                        downlink_bandwidth=net.downlink_bandwidth, compute_seconds=compute, workers=workers)
 
 
 def respace(prep: Prepared, overrides: dict) -> Prepared:
@@ -226,7 +232,8 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
             objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                                   max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                                   seeds=search_seeds(spec), worker=0, network=prep.network, loss_ref=ws.loss_ref,
-                                  precision=job.engine.precision, front=job.objective == "front")
+                                  precision=job.engine.precision, front=job.objective == "front",
+                                  downlink=job.downlink)
             run_trials(open_study(store, name, sampler_seed=sampler_seeds[0], pruner=spec.pruner), objective,
                        budget=spec.trials)
         else:
@@ -383,7 +390,8 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int | None =
         objective = Objective(problem=ws.problem, space=space, x0=ws.x0, target=ws.target,
                               max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                               seeds=search_seeds(job.search), worker=index, network=network, loss_ref=ws.loss_ref,
-                              precision=job.engine.precision, front=job.objective == "front")
+                              precision=job.engine.precision, front=job.objective == "front",
+                              downlink=job.downlink)
         return run_trials(study, objective, budget=budget or int(attrs.get("budget", job.search.trials)))
 
 
@@ -405,6 +413,9 @@ def trajectory_curves(runs, *, loss_gap: bool) -> list[dict]:
                     "gradient_passes": r.passes_curve[keep].tolist(), "grad_norm_sq": r.grad_norm_sq[keep].tolist()})
         if loss_gap:
             out[-1]["loss_gap"] = r.progress[keep].tolist()  # f(x^k) - f_ref
+        if r.seconds_curve is not None:  # an uneven network: the engine's round-by-round seconds
+            out[-1]["seconds"] = r.seconds_curve[keep].tolist()
+            out[-1]["worker_shares"] = r.worker_shares.tolist()
     return out
 
 
@@ -525,6 +536,14 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str, output:
         doc["expected"]["theory_baseline"]["mean_seconds"] = sig(b["mean_seconds"])
     if sel.winner_resample is not None:
         doc["expected"]["transfer_ratio"] = sig(transfer_entry(sel.winner, sel.winner_resample)["transfer_ratio"])
+    if "worker_shares" in w:  # an uneven network (docs/design.md, "Round time with uneven workers")
+        doc["network_shares"] = {
+            "slowest_share": sig(w["worker_shares"]),
+            "note": "per worker, the fraction of the chosen run's simulated seconds in rounds where it was the "
+                    "slowest worker the server waited for (mean over expected.validation_seeds)"}
+    if job.downlink is not None:  # EF21-BC (docs/theory.md §2.11)
+        doc["downlink"] = {"compressor": dict(job.downlink),
+                           "mean_bits_per_worker": sig(w["mean_downlink_bits_per_worker"])}
     if sel.gd is not None:
         doc["baseline"] = _gd_section(sel, prep)
     doc["gains"] = {"objective": job.objective, "validation_seeds": len(sel.seeds),

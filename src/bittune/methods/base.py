@@ -28,9 +28,17 @@ class Method(ABC):
     #: Per-trajectory parameters besides the step size, with their defaults
     #: (a callable of the compressor, or None when the parameter is required).
     params: ClassVar[dict[str, object]] = {}
+    #: Has a published bidirectional form: takes a downlink compressor (params["downlink"]).
+    bidirectional: ClassVar[bool] = False
 
     def __init__(self, *, compressor, n_workers: int, dim: int, batch: int, **params):
         self.compressor = compressor
+        #: The server's compressor (None: a dense broadcast); only bidirectional methods take one.
+        self.downlink = params.pop("downlink", None)
+        if self.downlink is not None and not self.bidirectional:
+            raise ValueError(f"{self.name}: has no bidirectional form, cannot take a downlink compressor")
+        self._down_bits: np.ndarray | None = None  # (B,) broadcast bits of the last round
+        self._waited: np.ndarray | None = None  # (B, n) workers the last round waited for
         self.n = int(n_workers)
         self.d = int(dim)
         self.p: dict[str, np.ndarray] = {}
@@ -64,10 +72,20 @@ class Method(ABC):
         minibatch method's."""
         return None
 
+    def downlink_bits(self) -> np.ndarray | None:
+        """Bits of the last round's broadcast per worker, (B,); None: one dense vector."""
+        return self._down_bits
+
+    def waited(self) -> np.ndarray | None:
+        """Workers the server waited for in the last round, (B, n) booleans; None: all of them."""
+        return self._waited
+
     def keep(self, index: np.ndarray) -> None:
         """Drop finished trajectories: keep rows ``index`` of every array."""
         self.p = {k: v[index] for k, v in self.p.items()}
         self.state = {k: v[index] for k, v in self.state.items()}
+        self._down_bits = None if self._down_bits is None else self._down_bits[index]
+        self._waited = None if self._waited is None else self._waited[index]
         keep = getattr(self.compressor, "keep", None)  # a per-trajectory compressor (PerTrajectory)
         if keep is not None:
             keep(index)

@@ -20,6 +20,9 @@ returns. On a compressed round worker i reports the sum of the bits of its
 messages (twice the message if drawn twice, 0 if not drawn), so that mean is
 (total bits sent)/n and totals come out right; it is not what a typical
 worker sends (only r messages are sent, not n).
+
+Time (uneven network, cost.NetworkModel.round_seconds): a compressed round waits
+for the drawn clients only (:meth:`Method.waited`), a sync round for all n.
 """
 
 from __future__ import annotations
@@ -68,9 +71,15 @@ class PPMARINA(Method):
         q, qbits = self.compressor.compress(diff, keys, round_)
         g = self.state["g"] + np.where(live[:, :, None], q, 0.0).sum(axis=1) / r[:, None]
         bits = np.zeros((B, n))
-        np.add.at(bits, (np.broadcast_to(np.arange(B)[:, None], picks.shape), picks), np.where(live, qbits, 0.0))
+        at = (np.broadcast_to(np.arange(B)[:, None], picks.shape), picks)  # (trajectory, client) of each draw
+        np.add.at(bits, at, np.where(live, qbits, 0.0))
         g[sync] = grads[sync].mean(axis=1)
         bits[sync] = self._dense(grads)[sync]
+        # The server waits for its drawn clients on a compressed round, for all on a sync round.
+        drawn = np.zeros((B, n))
+        np.add.at(drawn, at, live)
+        drawn[sync] = 1.0
+        self._waited = drawn > 0
         self.state["g"] = g
         self.state["prev"] = grads
         return g.copy(), bits
