@@ -42,6 +42,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from tuning import Log  # the progress object that marks when each phase began
 
 #: The default grid: (N, d, n, sparse). Dense d from 50 to 2,000, one sparse 20k-feature sample.
 GRID = [(10_000, 50, 8, False), (20_000, 200, 16, False), (50_000, 500, 16, False), (100_000, 50, 64, False),
@@ -131,21 +132,6 @@ search:
 
 
 # ---------------------------------------------------------------------- children
-class Log:
-    """The ``progress`` object of :func:`bittune.tune.tune`: marks when each phase began."""
-
-    def __init__(self, label: str):
-        self.label, self.start, self.marks = label, time.monotonic(), {}
-
-    def note(self, text: str) -> None:
-        self.marks.setdefault(text.split(" ", 1)[0], time.monotonic() - self.start)
-        print(f"  [{self.label} {time.monotonic() - self.start:5.0f} s] {text}", file=sys.stderr, flush=True)
-
-    def trials(self, done: int, best, pruned: int, failed: int) -> None:
-        if done % 10 == 0:
-            self.note(f"trials {done} (pruned {pruned}, failed {failed})")
-
-
 def maxrss_gib(who) -> float:
     """ru_maxrss (KiB on Linux) in GiB."""
     return resource.getrusage(who).ru_maxrss / 2**20
