@@ -98,7 +98,7 @@ def write_sparse(path: Path, N: int, d: int, seed: int = SEED) -> None:
     with open(path, "w") as fh:
         for start in range(0, N, 2_000):
             rows = min(2_000, N - start)
-            cols = np.sort(np.argsort(rng.random((rows, d)), axis=1)[:, :k], axis=1)
+            cols = np.sort(np.argpartition(rng.random((rows, d)), k, axis=1)[:, :k], axis=1)
             vals = rng.lognormal(0.0, 0.5, (rows, k)) * rng.choice([-1.0, 1.0], (rows, k))
             margin = (vals * hidden[cols]).sum(axis=1)
             margin *= 2.0 / max(margin.std(), 1e-12)
