@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: install demo test bench bench-tuning bench-breadth clean
+.PHONY: install demo test bench bench-tuning bench-breadth bench-scale clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -33,6 +33,11 @@ bench-tuning: $(STAMP)
 
 bench-breadth: $(STAMP)
 	$(PY) benchmarks/breadth.py
+
+# The whole grid takes hours on 2 cores; `benchmarks/scale.py --only 50000x500x16` is the goal's
+# configuration alone (about 20 minutes: three arms of 60 trials), `--quick` a smoke run.
+bench-scale: $(STAMP)
+	$(PY) benchmarks/scale.py
 
 clean:
 	rm -rf $(VENV) build src/*.egg-info .pytest_cache runs

@@ -106,6 +106,23 @@ def test_least_squares_smoothness_equals_top_singular_value(sparse):
     np.testing.assert_allclose(pooled, np.linalg.eigvalsh(H)[-1], rtol=1e-10)
 
 
+@pytest.mark.parametrize("sparse", [False, True])
+def test_smoothness_without_grams_above_the_direct_limit_equals_svd(sparse):
+    """Above ``GRAM_DIRECT_MAX`` features the bounds come from Lanczos on A_i^T A_i / m_i without
+    forming a gram (docs/design.md, "Scale"); reference: numpy.linalg.svd of the dense rows."""
+    d = _shards.GRAM_DIRECT_MAX + 44
+    problem, rows, _ = random_problem(model="least_squares", sparse=sparse, seed=17, sizes=(40, 310, 75), dim=d,
+                                      reg=0.2)
+    per, pooled = problem.smoothness_bounds()
+    dense_rows = [r.toarray() if sp.issparse(r) else r for r in rows]
+    ref = [np.linalg.svd(r, compute_uv=False)[0] ** 2 / r.shape[0] + 0.2 for r in dense_rows]
+    # ARPACK at tol = 0 converges to machine precision; 1e-9 leaves room for the rounding of
+    # d-term sums in both references (common practice, no source).
+    np.testing.assert_allclose(per, ref, rtol=1e-9)
+    stacked = np.vstack([r / np.sqrt(len(rows) * r.shape[0]) for r in dense_rows])  # B^T B = mean A_i^T A_i / m_i
+    np.testing.assert_allclose(pooled, np.linalg.svd(stacked, compute_uv=False)[0] ** 2 + 0.2, rtol=1e-9)
+
+
 def test_logistic_bound_is_attained_at_zero():
     """docs/theory.md §3.2: the logistic Hessian bound A^T A/(4m) is attained at x = 0,
     and the regulariser's Hessian there is 2 lam I, so lambda_max(Hess f_i(0)) = L_i."""
