@@ -401,29 +401,48 @@ def other_method(folder: Path, method: str, *, trials: int, validation: int, job
         print("  note: the tuned point did not reach the target on every fresh seed")
 
 
-def batched_only(folder: Path, *, trials: int, size: int, validation: int) -> int:
-    """Search phase with ``search.trial_batch: size`` against one trial at a time (jobs=1, same trial
-    budget), and both tuned configs' bits on the same fresh seeds (paired interval)."""
+def load_text() -> str:
+    """The 1, 5 and 15 minute load averages (as ``uptime`` prints them), for the side of a timing."""
+    return "load average " + ", ".join(f"{v:.2f}" for v in os.getloadavg())
+
+
+def batched_only(folder: Path, *, trials: int, sizes: list[int], validation: int) -> int:
+    """Search phase with ``search.trial_batch`` at each of ``sizes`` against one trial at a time
+    (jobs=1, same trial budget), and the tuned configs' bits on the same fresh seeds (paired
+    interval). The arms run one after the other in this one process, the load average printed
+    beside each, so a busy machine shows."""
     one = write_job(folder, "one", methods=["marina"], compressors=["rand_k"], trials=trials,
                     validation=validation)
-    many = write_job(folder, "many", methods=["marina"], compressors=["rand_k"], trials=trials,
-                     validation=validation, trial_batch=size)
+    print(f"before the arms: {load_text()}")
     res1, wall1 = run_tune(one, folder, trials=trials, jobs=1, label="batch-1")
-    resb, wallb = run_tune(many, folder, trials=trials, jobs=1, label=f"batch-{size}")
-    s1, sb = res1.phases["search"], resb.phases["search"]
-    print(f"\nsearch phase, {trials} trials, jobs=1: one at a time {s1:.1f} s, {size} at a time {sb:.1f} s: "
-          f"{s1 / sb:.2f}x (wall {wall1:.0f} s / {wallb:.0f} s; load average now {os.getloadavg()[0]:.1f})")
+    load1 = load_text()
+    arms = []
+    for size in sizes:
+        many = write_job(folder, f"many{size}", methods=["marina"], compressors=["rand_k"], trials=trials,
+                         validation=validation, trial_batch=size)
+        resb, wallb = run_tune(many, folder, trials=trials, jobs=1, label=f"batch-{size}")
+        arms.append((size, resb, wallb, load_text()))
+    s1 = res1.phases["search"]
+    e1 = res1.selection.winner
+    print(f"\nsearch phase, {trials} trials, jobs=1: one at a time {s1:.1f} s (wall {wall1:.0f} s; {load1})")
+    goals = []
+    for size, resb, wallb, load in arms:
+        sb = resb.phases["search"]
+        print(f"  trial_batch {size}: {sb:.1f} s, {s1 / sb:.2f}x faster (wall {wallb:.0f} s; {load})")
     print(HEADER)
-    e1, eb = res1.selection.winner, resb.selection.winner
     print(row("one trial at a time", e1, evals=trials))
-    print(row(f"trial_batch {size}", eb, evals=trials))
-    lo, hi = paired_interval(eb, e1)
-    ratio = eb.mean_bits / e1.mean_bits
-    goals = [
-        check(f"search with trial_batch {size} at least 2.5x faster", ok=s1 / sb >= 2.5, detail=f"{s1 / sb:.2f}x"),
-        check("its tuned config's fresh-seed bits within 5%", ok=eb.all_reached and (hi <= 1.05 or ratio <= 1.0),
-              detail=f"{ratio_text(eb, e1)}"),
-    ]
+    for size, resb, _, _ in arms:
+        print(row(f"trial_batch {size}", resb.selection.winner, evals=trials))
+    for size, resb, _, _ in arms:
+        sb, eb = resb.phases["search"], resb.selection.winner
+        _, hi = paired_interval(eb, e1)
+        ratio = eb.mean_bits / e1.mean_bits
+        goals += [
+            check(f"search with trial_batch {size} at least 2.5x faster", ok=s1 / sb >= 2.5,
+                  detail=f"{s1 / sb:.2f}x"),
+            check(f"trial_batch {size}: tuned config's fresh-seed bits within 5%",
+                  ok=eb.all_reached and (hi <= 1.05 or ratio <= 1.0), detail=f"{ratio_text(eb, e1)}"),
+        ]
     return 0 if all(goals) else 1
 
 
@@ -440,9 +459,10 @@ def main() -> int:
                          "(0: skip)")
     ap.add_argument("--speed-only", action="store_true",
                     help="only time tune --jobs 1 against --jobs 2 (by phase), on an otherwise idle machine")
-    ap.add_argument("--batched-only", type=int, default=0, metavar="B",
-                    help="only time the search with trials asked B at a time (search.trial_batch) against one "
-                         "at a time (jobs=1, equal trial budget), with both winners' bits on the fresh seeds")
+    ap.add_argument("--batched-only", default="", metavar="B[,B...]",
+                    help="only time the search with trials asked B at a time (search.trial_batch; several sizes "
+                         "comma-separated) against one at a time (jobs=1, equal trial budget), in one run, with "
+                         "the winners' bits on the fresh seeds")
     ap.add_argument("--also-unpruned", action="store_true",
                     help="also tune with search.pruner: none (jobs=2) and show it beside (b), for comparison")
     args = ap.parse_args()
@@ -480,7 +500,8 @@ def main() -> int:
             print("QUICK MODE: small grid and few trials; the checks below are NOT meaningful")
 
         if args.batched_only:
-            return batched_only(folder, trials=trials, size=args.batched_only, validation=args.validation_seeds)
+            sizes = [int(v) for v in args.batched_only.split(",")]
+            return batched_only(folder, trials=trials, sizes=sizes, validation=args.validation_seeds)
 
         # (b) bittune, jobs=1 then jobs=2 in a fresh run folder.
         res1, wall1 = run_tune(job_path, folder, trials=trials, jobs=1, label="tune-j1")

@@ -139,6 +139,47 @@ def test_batched_trials_give_the_values_of_trials_run_one_at_a_time(cancer):
     assert reached >= 6  # most of these settings reach: the value check is not vacuous
 
 
+def test_a_batch_tightens_its_cap_as_its_trials_reach(cancer):
+    """A fast and a slow MARINA trial in one batch (same Rand-K, bits cap factor 3): once the fast
+    one has reached on both seeds at a mean of b bits, the slow one stops at 3 b, exactly as the
+    slow trial alone under a bit cap of 3 b (same rounds, bits, status bits_cap), and its penalty
+    starts from that cap (bittune.batch; the reference is the engine's own bit cap and
+    bittune.search.score)."""
+    from dataclasses import replace
+
+    from bittune.job import SECTIONS, SearchSpec
+    from bittune.search import score
+
+    defaults = {k: p.default for k, p in SECTIONS["search"].items()}
+    spec = SearchSpec(**{**defaults, "methods": ["marina"], "compressors": ["rand_k"], "pruner": "none",
+                         "bits_cap_factor": 3.0, "seeds": 2, "trial_batch": 2})
+    fast = {"method": "marina", "marina.compressor": "rand_k", "rand_k.k": 4, "marina.step_mult": 3.0,
+            "marina.sync_mult": 1.0}
+    slow = dict(fast, **{"marina.step_mult": 0.5})
+    obj = _objective(cancer, spec, seeds=[5, 6])
+    study = optuna.create_study(sampler=optuna.samplers.TPESampler(seed=0), pruner=optuna.pruners.NopPruner())
+    study.enqueue_trial(fast)
+    study.enqueue_trial(slow)
+    assert run_trials(study, obj, budget=2) == 2
+    a, b = sorted(study.get_trials(states=(TrialState.COMPLETE,)), key=lambda t: t.number)
+    assert a.user_attrs["reached"] == 2 and b.user_attrs["reached"] == 0
+    cap = 3.0 * a.value
+    plan = obj.plan(optuna.trial.FixedTrial(slow), None)
+    alone = simulate(cancer, method="marina", compressor=plan.compressor, step_size=plan.candidate.step_size,
+                     seeds=[5, 6], target=obj.target, max_rounds=obj.max_rounds, x0=obj.x0,
+                     params=plan.candidate.params(), max_bits_per_worker=cap, stall_window=plan.window)
+    assert [r.status for r in alone] == ["bits_cap", "bits_cap"]  # the slow setting is cut by the cap
+    assert b.user_attrs["status"] == ["bits_cap", "bits_cap"]
+    assert b.user_attrs["rounds"] == [r.rounds for r in alone]
+    np.testing.assert_allclose(b.user_attrs["bits"], [r.uplink_bits for r in alone], rtol=RTOL)
+    assert b.value == pytest.approx(score(alone, target=obj.target, cap=cap)[0], rel=1e-6)
+    # A batch without a finished trial keeps the study's cap: the slow trial alone in its batch runs on.
+    study2 = optuna.create_study(sampler=optuna.samplers.TPESampler(seed=0), pruner=optuna.pruners.NopPruner())
+    study2.enqueue_trial(slow)
+    assert run_trials(study2, _objective(cancer, replace(spec, trial_batch=2), seeds=[5, 6]), budget=1) == 1
+    assert "bits_cap" not in study2.trials[0].user_attrs["status"]
+
+
 def test_a_pruned_trial_leaves_its_batch_mates_running(cancer):
     """Per-trajectory stopping: a monitor that prunes one trial stops only that trial's trajectories."""
     from bittune.batch import _SplitMonitor
