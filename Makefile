@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: install demo test bench bench-tuning bench-breadth clean
+.PHONY: install demo test bench bench-tuning bench-breadth bench-quality clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -33,6 +33,9 @@ bench-tuning: $(STAMP)
 
 bench-breadth: $(STAMP)
 	$(PY) benchmarks/breadth.py
+
+bench-quality: $(STAMP)
+	nice -n 5 $(PY) benchmarks/quality.py
 
 clean:
 	rm -rf $(VENV) build src/*.egg-info .pytest_cache runs
