@@ -114,9 +114,9 @@ def compare(folder: Path, method: str, *, trials: int, validation: int, quick: b
     print(f"\n{method.upper()} + {name}: mean uplink bits per worker over {len(fresh)} fresh seeds; "
           f"grid {len(points)} distinct points ({wall_c:.0f} s), tune {wall_b:.0f} s, plain {wall_d:.0f} s")
     print_four(a, b, c, d, trials=trials, evals_b=evals_b, grid_size=len(points), plain_trials=n_d)
-    t = space.theory(method, b.candidate.compressor, b.candidate.clients)
-    print(f"  (b) step {b.candidate.step_size:.4g} = x{b.candidate.step_mult:.3g} theory "
-          f"({t.step_size:.3g}) at its density; (c) x{c.candidate.step_mult:.3g}")
+    print(f"  steps over 1/L = {1 / constants.L:.4g}: (a) x{a.candidate.step_size * constants.L:.3g}, "
+          f"(b) x{b.candidate.step_size * constants.L:.3g}, (c) x{c.candidate.step_size * constants.L:.3g}, "
+          f"(d) x{d.candidate.step_size * constants.L:.3g}")
     ok_c, text_c = within(b, c, margin=1.05)
     ok_d, text_d = within(b, d, margin=1.0)
     goals = [check(f"{method}: (b) within 5% of the grid's best (c)", ok=ok_c, detail=text_c),

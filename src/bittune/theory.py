@@ -287,8 +287,8 @@ def ef21_rule(compressor: Compressor, constants: Constants, *, target: float,
 
 #: EF21's search range as multipliers of its anchor 1/L (docs/theory.md §2.9, "Search anchor";
 #: common practice, no source): down to 1/256 (the theory step at K = 1 for d up to ~128 when
-#: L_QM ~ L) and up to 8/L (past GD's own divergence at 2/L).
-EF21_ANCHOR_RANGE = (1.0 / 256.0, 8.0)
+#: L_QM ~ L) and up to 16/L (the probe's L is a global bound; good steps measured at 2-5/L).
+EF21_ANCHOR_RANGE = (1.0 / 256.0, 16.0)
 
 
 def ef21_search_anchor(c: Constants) -> dict:
