@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: install demo test bench bench-tuning bench-breadth bench-scale clean
+.PHONY: install demo test bench bench-tuning bench-breadth bench-scale bench-quality clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -38,6 +38,9 @@ bench-breadth: $(STAMP)
 # configuration alone (about 20 minutes: three arms of 60 trials), `--quick` a smoke run.
 bench-scale: $(STAMP)
 	$(PY) benchmarks/scale.py
+
+bench-quality: $(STAMP)
+	nice -n 5 $(PY) benchmarks/quality.py
 
 clean:
 	rm -rf $(VENV) build src/*.egg-info .pytest_cache runs

@@ -179,23 +179,31 @@ class _BatchCap:
         return cap is not None and bits.size > 0 and bool(np.all(bits >= cap))
 
 
-def grid_batches(points: list[Candidate]) -> list[list[tuple[int, float, float]]]:
-    """(K, step, p) of the points, one engine batch per (K, p), largest K first."""
+def grid_batches(points: list[Candidate]) -> list[list[Candidate]]:
+    """The points, one engine batch per setting but the step (method, compressor, method parameters),
+    densest first."""
     groups: dict[tuple, list] = {}
     for c in points:
-        k = int(c.compressor["k"])
-        groups.setdefault((k, c.sync_probability), []).append((k, c.step_size, c.sync_probability))
-    return [groups[key] for key in sorted(groups, key=lambda kp: (-kp[0], -kp[1]))]
+        groups.setdefault((c.method, c.label, tuple(sorted(c.params().items()))), []).append(c)
+
+    def order(key):
+        first = groups[key][0]
+        return (-_density(first), -(first.sync_probability or 1.0))
+    return [groups[key] for key in sorted(groups, key=order)]
 
 
-def deal(batches: list[list], jobs: int) -> list[list[int]]:
+def _density(c: Candidate) -> int:
+    return int(c.compressor.get("k", c.compressor.get("levels", 1)))
+
+
+def deal(batches: list[list[Candidate]], jobs: int) -> list[list[int]]:
     """Batch indices per process, costliest first to the least loaded (LPT scheduling).
 
     Cost per point ~ K^-0.26 p^-0.55: small K and rare syncs need more rounds
-    for the same bits (fitted to the trajectory-rounds of one full grid on this
+    for the same bits (fitted to the trajectory-rounds of one full MARINA grid on this
     problem; only the balance between the processes depends on it).
     """
-    cost = [len(b) * b[0][0] ** -0.26 * b[0][2] ** -0.55 for b in batches]
+    cost = [len(b) * _density(b[0]) ** -0.26 * (b[0].sync_probability or 1.0) ** -0.55 for b in batches]
     load, parts = [0.0] * jobs, [[] for _ in range(jobs)]
     for i in sorted(range(len(batches)), key=lambda i: -cost[i]):
         w = int(np.argmin(load))
@@ -205,7 +213,7 @@ def deal(batches: list[list], jobs: int) -> list[list[int]]:
 
 
 def grid_worker(job_path: str, batches: list, *, factor: float, threads: int) -> list[list[dict]]:
-    """Score every point of ``batches`` like a trial (one engine batch per (K, p): steps x seeds)."""
+    """Score every point of ``batches`` like a trial (one engine batch per setting: steps x seeds)."""
     from threadpoolctl import threadpool_limits
 
     from bittune.problems import _shards
@@ -217,15 +225,14 @@ def grid_worker(job_path: str, batches: list, *, factor: float, threads: int) ->
         seeds = search_seeds(job.search)
         S, best, out, work, t0 = len(seeds), math.inf, [], 0, time.perf_counter()
         for batch in batches:
-            k = batch[0][0]
-            steps = np.repeat([b[1] for b in batch], S)
-            syncs = np.repeat([b[2] for b in batch], S)
+            first = batch[0]
+            steps = np.repeat([c.step_size for c in batch], S)
             monitor = _BatchCap(len(batch), S, target=ws.target, best=best, factor=factor)
-            runs = simulate(ws.problem, method="marina", compressor=make_compressor({"name": "rand_k", "k": k}, D),
-                            step_size=steps, seeds=np.tile(seeds, len(batch)), target=ws.target,
-                            max_rounds=job.budget.max_rounds, x0=ws.x0, params={"sync_probability": syncs},
-                            max_bits_per_worker=monitor.cap(), stall_window=stall_window("marina", syncs),
-                            monitor=monitor)
+            comp = make_compressor(first.compressor, ws.problem.dim, n_workers=N)
+            runs = simulate(ws.problem, method=first.method, compressor=comp, step_size=steps,
+                            seeds=np.tile(seeds, len(batch)), target=ws.target, max_rounds=job.budget.max_rounds,
+                            x0=ws.x0, params=first.params(), max_bits_per_worker=monitor.cap(),
+                            stall_window=stall_window(first.method, first.sync_probability), monitor=monitor)
             cap = monitor.cap()
             res = []
             for j in range(len(batch)):
@@ -260,42 +267,67 @@ def evaluate_grid(job_path: Path, points: list[Candidate], *, factor: float, job
                 results[i] = r
     scores = {}
     for batch, res in zip(batches, results):
-        for (k, step, p), r in zip(batch, res):
-            scores[(k, step, p)] = r
-    return [scores[(int(c.compressor["k"]), c.step_size, c.sync_probability)] for c in points]
+        for c, r in zip(batch, res):
+            scores[c.key()] = r
+    return [scores[c.key()] for c in points]
+
+
+def grid_best(job_path: Path, ws, points: list[Candidate], fresh: list[int], *, factor: float,
+              seeds: int) -> Evaluation:
+    """The grid's best point (all search seeds reached, else the best score), run on the fresh seeds."""
+    grid = evaluate_grid(job_path, points, factor=factor, jobs=2)
+    ok = [i for i, r in enumerate(grid) if r["reached"] == seeds] or range(len(grid))
+    return evaluate(ws, [points[min(ok, key=lambda i: grid[i]["value"])]], fresh)[0]
 
 
 # ----------------------------------------------------------- plain Optuna (d)
 class PlainObjective:
-    """Raw K, step size and sync probability; the search's score, seeds and bit-cap rule; no pruning."""
+    """Raw density, step size and method parameters (sync probability, shift rate, clients) of one
+    method and compressor; the search's score, seeds and bit-cap rule; no pruning."""
 
-    def __init__(self, ws, seeds: list[int], factor: float):
+    def __init__(self, ws, seeds: list[int], factor: float, *, method: str = "marina", compressor: str = "rand_k"):
         self.ws, self.seeds, self.factor = ws, seeds, factor
+        self.method, self.compressor = method, compressor
 
     def candidate(self, params: dict) -> Candidate:
-        return Candidate("marina", {"name": "rand_k", "k": int(params["k"])}, float(params["step_size"]),
-                         float(params["sync_probability"]))
+        comp = {"name": self.compressor}
+        if "k" in params:
+            comp["k"] = int(params["k"])
+        return Candidate(self.method, comp, float(params["step_size"]), params.get("sync_probability"),
+                         params.get("shift_rate"), clients=params.get("clients"))
+
+    def suggest(self, trial: optuna.Trial) -> Candidate:
+        params = {"step_size": trial.suggest_float("step_size", *RAW_STEP, log=True)}
+        if self.compressor in ("rand_k", "top_k"):
+            params["k"] = trial.suggest_int("k", 1, D, log=True)
+        if self.method in ("marina", "pp_marina", "vr_marina"):
+            params["sync_probability"] = trial.suggest_float("sync_probability", *RAW_SYNC, log=True)
+        if self.method == "diana":
+            params["shift_rate"] = trial.suggest_float("shift_rate", *RAW_SYNC, log=True)
+        if self.method == "pp_marina":
+            params["clients"] = trial.suggest_int("clients", 1, N, log=True)
+        return self.candidate(params)
 
     def __call__(self, trial: optuna.Trial) -> float:
-        cand = self.candidate({"k": trial.suggest_int("k", 1, D, log=True),
-                               "step_size": trial.suggest_float("step_size", *RAW_STEP, log=True),
-                               "sync_probability": trial.suggest_float("sync_probability", *RAW_SYNC, log=True)})
+        cand = self.suggest(trial)
         done = [t for t in trial.study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
                 if t.user_attrs.get("reached") == len(self.seeds)]
         best = min((t.value for t in done), default=math.inf)
         cap = self.factor * best if math.isfinite(best) else None
-        runs = simulate(self.ws.problem, method="marina", compressor=make_compressor(cand.compressor, D),
+        runs = simulate(self.ws.problem, method=self.method,
+                        compressor=make_compressor(cand.compressor, D, n_workers=N),
                         step_size=cand.step_size, seeds=self.seeds, target=self.ws.target,
                         max_rounds=MAX_ROUNDS, x0=self.ws.x0, params=cand.params(), max_bits_per_worker=cap,
-                        stall_window=stall_window("marina", cand.sync_probability))
+                        stall_window=stall_window(self.method, cand.sync_probability))
         value, _ = score(runs, target=self.ws.target, cap=cap)
         trial.set_user_attr("reached", int(sum(r.reached for r in runs)))
         return value
 
 
-def plain_optuna(ws, seeds: list[int], *, trials: int, factor: float, log: Log) -> tuple[Candidate, int]:
+def plain_optuna(ws, seeds: list[int], *, trials: int, factor: float, log: Log, method: str = "marina",
+                 compressor: str = "rand_k") -> tuple[Candidate, int]:
     study = optuna.create_study(direction="minimize", sampler=optuna.samplers.TPESampler(seed=SEED))
-    objective = PlainObjective(ws, seeds, factor)
+    objective = PlainObjective(ws, seeds, factor, method=method, compressor=compressor)
     for _ in range(trials):
         study.optimize(objective, n_trials=1)
         done = len(study.trials)
@@ -314,6 +346,15 @@ def row(setting: str, e: Evaluation, *, evals: int) -> str:
     reached = sum(r.reached for r in e.runs)
     return (f"{setting:<28} {c.method:<7} {c.compressor['name']:<7} {k!s:>4} {c.step_size:>10.4g} {p:>7} "
             f"{e.mean_bits:>13,.0f} {reached:>3}/{len(e.runs):<3} {evals!s:>6}")
+
+
+def print_four(a, b, c, d, *, trials: int, evals_b: int, grid_size: int, plain_trials: int) -> None:
+    """The table of (a) theory, (b) bittune, (c) the grid's best, (d) plain Optuna."""
+    print(HEADER)
+    print(row("(a) theory", a, evals=1))
+    print(row(f"(b) bittune, {trials} trials", b, evals=evals_b))
+    print(row(f"(c) grid best of {grid_size}", c, evals=grid_size + 1))
+    print(row(f"(d) plain Optuna, {plain_trials} trials", d, evals=plain_trials + 1))
 
 
 HEADER = (f"{'setting':<28} {'method':<7} {'comp.':<7} {'K/s':>4} {'step':>10} {'p':>7} "
@@ -527,10 +568,8 @@ def main() -> int:
         syncs = QUICK_SYNC if args.quick else GRID_SYNC
         points = grid_points(space, ks=ks, step_mults=steps, sync_mults=syncs)
         t0 = time.perf_counter()
-        grid = evaluate_grid(job_path, points, factor=spec.bits_cap_factor, jobs=2)
+        c = grid_best(job_path, ws, points, fresh, factor=spec.bits_cap_factor, seeds=len(seeds))
         wall_grid = time.perf_counter() - t0
-        ok = [i for i, r in enumerate(grid) if r["reached"] == len(seeds)] or range(len(grid))
-        c = evaluate(ws, [points[min(ok, key=lambda i: grid[i]["value"])]], fresh)[0]
 
         # (d) plain Optuna.
         t0 = time.perf_counter()
@@ -543,11 +582,7 @@ def main() -> int:
         print(f"grid: K in {ks.tolist()} x step multiplier 2^0..2^{int(math.log2(steps[-1]))} "
               f"({len(steps)}) x p multiplier {list(syncs)} = {len(ks) * len(steps) * len(syncs)} combinations, "
               f"{len(points)} distinct (p = min(1, mult K/d) merges some at large K); {wall_grid:.0f} s")
-        print(HEADER)
-        print(row("(a) theory", a, evals=1))
-        print(row(f"(b) bittune, {trials} trials", b, evals=evals_b))
-        print(row(f"(c) grid best of {len(points)}", c, evals=len(points) + 1))
-        print(row(f"(d) plain Optuna, {n_d} trials", d, evals=n_d + 1))
+        print_four(a, b, c, d, trials=trials, evals_b=evals_b, grid_size=len(points), plain_trials=n_d)
         print(f"wall: tune jobs=1 {wall1:.0f} s (trials {res1.trials}), jobs=2 {wall2:.0f} s (trials {res2.trials}, "
               f"winner {res2.selection.winner.mean_bits:,.0f} bits); grid {wall_grid:.0f} s; "
               f"plain Optuna {wall_plain:.0f} s")

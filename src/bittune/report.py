@@ -172,7 +172,8 @@ def step_response(study) -> dict:
         m = t.params["method"]
         row = out.setdefault(m, {"number": [], "step_mult": [], "value": [], "reached_all": [], "compressor": []})
         row["number"].append(t.number)
-        row["step_mult"].append(float(t.params[f"{m}.step_mult"]))
+        # EF21 draws its step over its search anchor (docs/theory.md §2.9): that multiplier here
+        row["step_mult"].append(float(t.params.get(f"{m}.step_mult", t.params.get(f"{m}.anchor_mult"))))
         row["value"].append(trial_value(t))
         row["reached_all"].append(_reached_all(t))
         row["compressor"].append(_compressor(t.params))

@@ -124,7 +124,7 @@ def _warm_params(space, cands: list[Candidate]) -> list[dict]:
             minibatch = int(min(max(c.minibatch or 1, 1), space.max_minibatch))
         t = space.theory(c.method, c.compressor, clients, minibatch)
         params = {"method": c.method, f"{c.method}.compressor": c.compressor["name"],
-                  f"{c.method}.step_mult": _clip(c.step_size / t.step_size, s.step_range)}
+                  **space.step_params(c.method, c.compressor, c.step_size / t.step_size)}
         dp = space._density_param(c.compressor["name"])
         if dp is not None:
             pname, lo, hi = dp

@@ -48,6 +48,10 @@ __all__ = [
 COUNTED = (TrialState.COMPLETE, TrialState.PRUNED, TrialState.RUNNING)
 #: Step multipliers enqueued above the theory point (docs/design.md: theory is timid).
 SEED_LADDER = (1.0, 2.0, 4.0, 16.0, 64.0, 256.0)
+#: Anchor multipliers enqueued after the theory point for a method whose theory rule gives a
+#: search anchor (EF21: 1/L; docs/theory.md §2.9): around the anchor (good EF21 steps measured
+#: at 2-5/L on benchmarks/quality.py's problem, whose L is a global bound).
+ANCHOR_LADDER = (0.25, 1.0, 2.0, 4.0, 8.0)
 #: Methods with MARINA's sync probability p (searched as a multiplier of the theory p).
 SYNCED = ("marina", "pp_marina", "vr_marina")
 #: Minimum stall window in rounds; MARINA's grows like 1/p (docs/design.md measurements).
@@ -214,7 +218,8 @@ class Space:
         if dp is not None:
             pname, lo, hi = dp
             compressor[pname.split(".")[1]] = trial.suggest_int(pname, lo, hi, log=True)
-        step_mult = trial.suggest_float(f"{method}.step_mult", *s.step_range, log=True)
+        name_, lo_, hi_ = self.step_param(method, compressor)
+        step_mult = trial.suggest_float(name_, lo_, hi_, log=True) * self.step_unit(method, compressor)
         sync_mult = shift_mult = clients = minibatch = None
         if method in SYNCED:
             sync_mult = trial.suggest_float(f"{method}.sync_mult", *s.sync_range, log=True)
@@ -226,6 +231,32 @@ class Space:
             shift_mult = trial.suggest_float("diana.shift_mult", *s.shift_range, log=True)
         return self.candidate(method, compressor, step_mult=step_mult, sync_mult=sync_mult,
                               shift_mult=shift_mult, clients=clients, minibatch=minibatch)
+
+    def _anchor(self, method: str, compressor: dict):
+        """The theory point's (search_anchor, search_range), or None: the search's step unit is then the
+        theory step and its range ``search.step_range`` (docs/design.md, "Theory-relative search")."""
+        if method == "gd":
+            return None
+        t = self.theory(method, compressor)
+        return None if t.search_anchor is None else (t.search_anchor, t.search_range)
+
+    def step_param(self, method: str, compressor: dict) -> tuple[str, float, float]:
+        """(Optuna param name, low, high) of ``method``'s step: ``{method}.step_mult`` over the theory
+        step, or ``{method}.anchor_mult`` over the theory rule's search anchor."""
+        anchor = self._anchor(method, compressor)
+        if anchor is None:
+            return (f"{method}.step_mult", *self.spec.step_range)
+        return (f"{method}.anchor_mult", *anchor[1])
+
+    def step_unit(self, method: str, compressor: dict) -> float:
+        """The step multiplier over the theory step that one unit of :meth:`step_param` is."""
+        anchor = self._anchor(method, compressor)
+        return 1.0 if anchor is None else anchor[0] / self.theory(method, compressor).step_size
+
+    def step_params(self, method: str, compressor: dict, step_mult: float) -> dict:
+        """A step multiplier over the theory step as a trial holds it, clipped into its range."""
+        name, lo, hi = self.step_param(method, compressor)
+        return {name: _clip(step_mult / self.step_unit(method, compressor), (lo, hi))}
 
     def density_options(self, name: str, points: int) -> list[dict]:
         """Settings of compressor ``name`` on a log grid of ``points`` densities (one if it has none)."""
@@ -269,8 +300,12 @@ class Space:
                 base["vr_marina.minibatch"] = int(self.theory(method, comp).minibatch)
             if method == "diana":
                 base["diana.shift_mult"] = _clip(1.0, s.shift_range)
-            for m in SEED_LADDER:
-                params = dict(base, **{f"{method}.step_mult": _clip(m, s.step_range)})
+            pname_, lo_, hi_ = self.step_param(method, comp)
+            unit = self.step_unit(method, comp)
+            # Anchored: the theory point, then the ladder below and around the anchor.
+            ladder = SEED_LADDER if unit == 1.0 else (1.0 / unit, *ANCHOR_LADDER)
+            for m in ladder:
+                params = dict(base, **{pname_: _clip(m, (lo_, hi_))})
                 key = tuple(sorted(params.items()))
                 if key not in seen:
                     seen.add(key)
@@ -285,7 +320,9 @@ class Space:
         dp = self._density_param(name)
         if dp is not None:
             compressor[dp[0].split(".")[1]] = int(params[dp[0]])
-        return self.candidate(method, compressor, step_mult=params[f"{method}.step_mult"],
+        name_, _, _ = self.step_param(method, compressor)
+        return self.candidate(method, compressor,
+                              step_mult=params[name_] * self.step_unit(method, compressor),
                               sync_mult=params.get(f"{method}.sync_mult"),
                               shift_mult=params.get("diana.shift_mult") if method == "diana" else None,
                               clients=params.get("pp_marina.clients") if method == "pp_marina" else None,

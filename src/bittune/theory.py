@@ -14,7 +14,7 @@ from __future__ import annotations
 import inspect
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -25,7 +25,8 @@ from .methods import dense_bits
 
 __all__ = [
     "TheoryPoint", "RULES", "theory_point", "theory_table", "measured_contraction",
-    "default_compressor_specs", "gd_rule", "dcgd_rule", "diana_rule", "marina_rule", "ef21_rule",
+    "default_compressor_specs", "ef21_search_anchor", "EF21_ANCHOR_RANGE", "gd_rule", "dcgd_rule",
+    "diana_rule", "marina_rule", "ef21_rule",
     "pp_marina_rule", "vr_marina_rule", "ab_step_size", "fits", "pl_point", "PL_METHODS",
 ]
 
@@ -48,6 +49,12 @@ class TheoryPoint:
     #: Under PL (constants.pl_mu): the predicted per-round contraction 1 - gamma mu of the gap
     #: (linear rate); None for the non-convex rules.
     rate: float | None = None
+    #: The step the search's step multiplier scales, when the method has a practical anchor other
+    #: than its theory step (EF21: 1/L, docs/theory.md §2.9 "Search anchor"); None: the theory step.
+    search_anchor: float | None = None
+    #: The multiplier range over ``search_anchor`` that the search draws from (replaces
+    #: ``search.step_range`` for this method); None with no anchor.
+    search_range: tuple[float, float] | None = None
 
     def method_params(self) -> dict[str, float]:
         """The method parameters in the form :func:`bittune.simulate.simulate` takes."""
@@ -68,6 +75,7 @@ class TheoryPoint:
             "predicted_rounds": int(self.predicted_rounds),
             "predicted_bits_per_worker": float(self.predicted_bits_per_worker),
             **({} if self.rate is None else {"linear_rate": float(self.rate)}),
+            **({} if self.search_anchor is None else {"search_anchor": float(self.search_anchor)}),
             "source": self.source,
         }
 
@@ -272,8 +280,22 @@ def ef21_rule(compressor: Compressor, constants: Constants, *, target: float,
     gamma = 1.0 / (c.L + c.L_qm * math.sqrt(1.0 - a) / theta)
     rounds = _rounds(2.0 * c.delta0 / gamma, target)
     note = "" if alpha is None else f"alpha measured {a:.4g} (worst case {compressor.alpha:.4g})"
-    return _point("ef21", compressor, gamma, rounds, dense_bits(c.dim) + rounds * compressor.nominal_bits,
-                  "Richtarik et al. 2021, Thm 1 (from memory)", note=note)
+    point = _point("ef21", compressor, gamma, rounds, dense_bits(c.dim) + rounds * compressor.nominal_bits,
+                   "Richtarik et al. 2021, Thm 1 (from memory)", note=note)
+    return replace(point, **ef21_search_anchor(c))
+
+
+#: EF21's search range as multipliers of its anchor 1/L (docs/theory.md §2.9, "Search anchor";
+#: common practice, no source): down to 1/256 (the theory step at K = 1 for d up to ~128 when
+#: L_QM ~ L) and up to 16/L (the probe's L is a global bound; good steps measured at 2-5/L).
+EF21_ANCHOR_RANGE = (1.0 / 256.0, 16.0)
+
+
+def ef21_search_anchor(c: Constants) -> dict:
+    """EF21's practical search anchor: the step 1/L of its uncompressed limit (K = d, where EF21 is GD),
+    whatever the density; the theory step gamma ~ alpha/(2 L_QM) shrinks with K/d while the good
+    steps do not (docs/theory.md §2.9, "Search anchor")."""
+    return {"search_anchor": 1.0 / c.L, "search_range": EF21_ANCHOR_RANGE}
 
 
 #: One rule per method name (the keys of :data:`bittune.methods.METHODS`).
@@ -348,7 +370,7 @@ def pl_point(point: TheoryPoint, compressor: Compressor, constants: Constants, *
     bits = _start_bits(point, c) + rounds * per_round
     return TheoryPoint(m, point.compressor, float(gamma), point.sync_probability, point.shift_rate, int(rounds),
                        float(bits), point.source + "; PL form", point.note, point.clients, point.minibatch,
-                       1.0 - gamma * mu)
+                       1.0 - gamma * mu, point.search_anchor, point.search_range)
 
 
 def _start_bits(point: TheoryPoint, c: Constants) -> float:

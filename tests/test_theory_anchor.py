@@ -1,0 +1,39 @@
+"""EF21's search anchor (docs/theory.md §2.9, "Search anchor") on a closed-form problem."""
+
+import numpy as np
+import pytest
+
+from bittune.constants import Constants
+from bittune.theory import EF21_ANCHOR_RANGE, theory_point
+
+
+def _diag_constants(diag, n=4):
+    # f(x) = 1/2 x^T diag(a) x on every worker (identical workers): L = L_QM = max a
+    # (the Hessian's largest eigenvalue; Nesterov, "Introductory Lectures on Convex
+    # Optimization", 2004, §1.2.2, from memory), and L_QM = sqrt(mean_i L_i^2) = max a.
+    L = float(np.max(diag))
+    return Constants(n_workers=n, dim=len(diag), L=L, L_workers=np.full(n, L), L_plus=L, L_pm=0.0, delta0=1.0,
+                     grad_sq0=1.0, local_grad_sq0=1.0, heterogeneity0=0.0)
+
+
+@pytest.mark.parametrize("k", [1, 3, 10])
+def test_ef21_anchor_is_one_over_L_whatever_k(k):
+    c = _diag_constants(np.array([4.0, 2.0, 1.0, 0.5, 0.25, 0.1, 0.1, 0.1, 0.1, 0.1]))
+    t = theory_point("ef21", f"top_k:{k}", c, target=1e-6)
+    # Anchor: 1/L, the step of EF21's uncompressed limit (K = d is GD); L = 4 in closed form.
+    assert t.search_anchor == pytest.approx(0.25, rel=1e-12)
+    assert t.search_range == EF21_ANCHOR_RANGE
+    # Theory step for Top-K's worst case alpha = K/d (Richtarik et al. 2021, Thm 1, from memory):
+    # gamma = 1/(L + L_QM sqrt(1-a)/(1-sqrt(1-a))); equal to the anchor only at K = d.
+    a = k / 10
+    gamma = 1.0 / (4.0 + 4.0 * np.sqrt(1 - a) / (1 - np.sqrt(1 - a)))
+    assert t.step_size == pytest.approx(gamma, rel=1e-12)
+    # The range reaches down to the theory step for these K (anchor / gamma <= 256).
+    assert EF21_ANCHOR_RANGE[0] * t.search_anchor <= t.step_size <= EF21_ANCHOR_RANGE[1] * t.search_anchor
+
+
+def test_other_rules_have_no_anchor():
+    c = _diag_constants(np.array([4.0, 1.0, 1.0, 1.0]))
+    for method, comp in (("marina", "rand_k:1"), ("diana", "rand_k:1"), ("dcgd", "rand_k:2")):
+        t = theory_point(method, comp, c, target=1e-6)
+        assert t.search_anchor is None and t.search_range is None
