@@ -116,6 +116,19 @@ def test_on_a_front_a_point_that_misses_on_the_resample_loses():
     assert (chosen, sorted(front)) == (0, [0, 1, 2])  # a: 9000 < c: 10000 among those that pass
 
 
+def test_front_points_with_equal_costs_count_once():
+    # Two finalists tied on (mean bits, mean seconds) are one point of the front (a non-dominated set is a set
+    # of cost vectors; common practice, no source); the one that passes on the resample stands for both.
+    a = _eval([1000.0] * 2, [True] * 2, [9.0] * 2)
+    a_twin = _eval([1000.0] * 2, [True] * 2, [9.0] * 2)
+    c = _eval([4000.0] * 2, [True] * 2, [2.5] * 2)
+    passes = _eval([1.0] * 2, [True] * 2, [1.0] * 2)
+    fails = _eval([1.0] * 2, [True, False], [1.0] * 2)
+    assert sorted(pick([a, a_twin, c], [passes] * 3, prefer="bits")[1]) == [0, 2]
+    chosen, front = pick([a, a_twin, c], [fails, passes, passes], prefer="bits")
+    assert (chosen, sorted(front)) == (1, [1, 2])
+
+
 # ------------------------------------------------------------------------- end to end
 @pytest.fixture(scope="module")
 def front_run(tmp_path_factory):

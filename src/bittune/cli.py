@@ -235,6 +235,8 @@ def _cmd_tune(args: argparse.Namespace) -> int:
                     "backoff": [e.summary() for e in result.selection.backoff]})
     else:
         base = exp["theory_baseline"]
+        # The gains are in the objective's cost: simulated seconds for seconds and front (docs/design.md, "The front").
+        unit = " in simulated seconds" if cfg.get("gains", {}).get("objective", "bits") != "bits" else ""
         print(f"chosen: {cfg['method']} + {_label(cfg['compressor'])}, step {cfg['step_size']:.4g}"
               + (f", sync probability {cfg['sync_probability']:.3g}" if cfg.get("sync_probability") else "")
               + (f", shift rate {cfg['shift_rate']:.3g}" if cfg.get("shift_rate") else ""))
@@ -242,14 +244,16 @@ def _cmd_tune(args: argparse.Namespace) -> int:
               f"bits/worker (sd {exp['std_bits_per_worker']:,.0f}), {exp['mean_rounds']:.0f} rounds")
         print(f"theory baseline ({base['method']} + {base['compressor']}): {base['mean_bits_per_worker']:,.0f} "
               f"bits/worker, reached on {base['reached']} of {len(exp['validation_seeds'])} seeds; "
-              f"gain {exp['gain_over_theory']:.1f}x" + (" or more" if exp["gain_is_lower_bound"] else ""))
+              f"gain {exp['gain_over_theory']:.1f}x" + (" or more" if exp["gain_is_lower_bound"] else "") + unit)
         gd = cfg.get("gains", {}).get("over_tuned_gd")
         if gd:
-            ci = gd["interval"]
-            print(f"tuned GD baseline (step {cfg['baseline']['step_size']:.4g}): "
-                  f"{cfg['baseline']['mean_bits_per_worker']:,.0f} bits/worker; gain {gd['ratio']:.3g}x"
+            ci, gd_cfg = gd["interval"], cfg["baseline"]
+            print(f"tuned GD baseline (step {gd_cfg['step_size']:.4g}): "
+                  f"{gd_cfg['mean_bits_per_worker']:,.0f} bits/worker"
+                  + (f", {gd_cfg['mean_seconds']:.4g} s" if gd_cfg.get("mean_seconds") is not None else "")
+                  + f"; gain {gd['ratio']:.3g}x"
                   + (f" (95% paired bootstrap interval {ci[0]:.3g}-{ci[1]:.3g})" if ci else "")
-                  + (" or more" if gd["lower_bound"] else ""))
+                  + (" or more" if gd["lower_bound"] else "") + unit)
         if exp.get("mean_seconds") is not None:
             print(f"simulated wall clock: {exp['mean_seconds']:.4g} s to target (theory baseline "
                   f"{base['mean_seconds']:.4g} s)")
@@ -260,7 +264,8 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         if cfg.get("front"):
             pts = cfg["front"]["points"]
             print(f"front ({len(pts)} points, prefer: {cfg['front']['prefer']}): " + "; ".join(
-                f"{'*' if p['chosen'] else ''}{p['method']} {p['mean_bits_per_worker']:,.0f} bits "
+                f"{'*' if p['chosen'] else ''}{p['method']} + {_label(p['compressor'])} step {p['step_size']:.3g}: "
+                f"{p['mean_bits_per_worker']:,.0f} bits "
                 f"{p['mean_seconds']:.4g} s" for p in pts))
         print(f"config: {args.output}")
         print(f"report: {result.report['html']}")

@@ -413,8 +413,8 @@ def _check_workers(raw, values: dict, problems: list[str]) -> tuple | None:
     if raw is None:
         return None
     net, n = values["network"], values["workers"].get("count")
-    if values[""].get("objective") != "seconds":
-        warnings.warn("network.workers: ignored unless objective is seconds", UserWarning, stacklevel=3)
+    if values[""].get("objective") not in ("seconds", "front"):
+        warnings.warn("network.workers: ignored unless objective is seconds or front", UserWarning, stacklevel=3)
     base = {k: net.get(k) for k in WORKER_LINK}
     if isinstance(raw, list):
         if n is not None and len(raw) != n:

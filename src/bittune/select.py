@@ -331,7 +331,8 @@ def pick(evals: list[Evaluation], resampled: list[Evaluation] | None = None, *,
     (``resampled``, same order) come first, then those that reached it on the sample only, then the
     rest (most seeds reached, then cost). Single objective: the least mean cost. Front: the front is
     the sample-validated finalists no other dominates on (mean bits, mean seconds), and ``prefer``
-    picks among its members that pass on the resample (all of it when none does)."""
+    picks among its members that pass on the resample (all of it when none does). Exact ties on both costs
+    count once."""
     n = len(evals)
     moved = [i for i in range(n) if resampled is not None and evals[i].all_reached
              and resampled[i].all_reached]
@@ -345,6 +346,12 @@ def pick(evals: list[Evaluation], resampled: list[Evaluation] | None = None, *,
         return pick(evals, resampled)[0], []
     costs = np.array([evals[i].both for i in ok])
     front = [ok[j] for j in np.flatnonzero(non_dominated(costs))]
+    # Finalists with the very same (mean bits, mean seconds) (e.g. steps a deterministic compressor cannot tell
+    # apart) are one point of the front: the first that passes on the resample stands for them (else the first).
+    stands: dict[tuple, int] = {}
+    for i in sorted(front, key=lambda i: (i not in moved, i)):
+        stands.setdefault(tuple(evals[i].both), i)
+    front = sorted(stands.values())
     pool = [i for i in front if i in moved] or front
     chosen = pool[choose(np.array([evals[i].both for i in pool]), prefer)]
     return chosen, front
