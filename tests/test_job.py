@@ -254,7 +254,7 @@ ERRORS = [
     (dict(probe={"safety": 0.5}), "probe.safety: must be a number >= 1, got 0.5"),
     (dict(probe={"runs": 0}), "probe.runs: must be an integer in [1, 100], got 0"),
     (dict(probe={"power_iters": 10**23}), "probe.power_iters: must be an integer in [1, 10000], got 100000000000000000000000"),
-    (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, objective, prefer, plugin, data, workers, "
+    (dict(zzz=1), "zzz: unknown key (expected one of model, regularization, objective, prefer, plugin, minibatch, data, workers, "
                   "target, budget, mlp, network, assume, engine, probe, search, start, downlink)"),
     (dict(objective="joules"), "objective: must be one of bits, seconds, front, got 'joules'"),
     (dict(prefer="bits"), "prefer: only used with objective: front (it picks a point of the bits-seconds front), "

@@ -73,7 +73,7 @@ PROBLEM = {"dimension": Param("int", low=1), "workers": Param("int", low=1)}
 #: ``baseline`` (tuned uncompressed GD), ``gains`` (over it and over theory, with intervals) and ``units``
 #: came later: configs without them load as before.
 FREE_SECTIONS = ("target", "expected", "baseline", "gains", "units", "constants", "provenance", "retune",
-                 "front", "transfer", "network_shares", "downlink")
+                 "front", "transfer", "network_shares", "downlink", "gradients")
 _KNOWN = ["bittune_config", *TOP, "compressor", "problem"]
 #: A section of one's own is a typo only this close to a known key (difflib ratio; 0.75 keeps
 #: `expectd` -> expected (0.93) and lets a `notes` section (0.6 to `units`) through; no source).
@@ -118,6 +118,8 @@ UNITS = {
          "Lipschitz constants of gradients; README, 'The constants')",
     "delta0": "loss units: f(x0) - lower bound",
     "grad_sq0": "squared gradient norm at x0",
+    "minibatch": "rows per worker per gradient evaluation (gradients: every method; top level: VR-MARINA's b')",
+    "noise_variance": "squared gradient units: variance of one worker's minibatch gradient (also noise_variance_x0)",
 }
 
 

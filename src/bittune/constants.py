@@ -45,6 +45,16 @@ class Constants:
     #: model's per-worker bounds, never from the user's ``probe.lower_bound`` (which bounds f only).
     #: None for constants built by hand or saved before it existed: Delta0 stands in.
     delta_star0: float | None = None
+    #: Stochastic gradients (job ``minibatch``, docs/theory.md §2.12): the minibatch b, and the
+    #: gradient-noise variance of a worker's b-row estimate, sigma_i^2 = (1/b)(1/m_i) sum_j
+    #: ||grad f_ij(x) - grad f_i(x)||^2 (rows drawn with replacement), averaged over the workers:
+    #: ``noise_variance0`` at x0, ``noise_variance`` the largest over the probe points (x0 and
+    #: along its runs; what the rules use), ``noise_workers0`` the per-worker values at x0.
+    #: None: full batch.
+    minibatch: int | None = None
+    noise_variance: float | None = None
+    noise_variance0: float | None = None
+    noise_workers0: np.ndarray | None = None
 
     @property
     def L_am(self) -> float:
@@ -79,7 +89,7 @@ class Constants:
     @classmethod
     def from_dict(cls, doc: dict) -> "Constants":
         doc = {k: v for k, v in doc.items() if k not in ("L_am", "L_qm", "L_max")}
-        for key in ("L_workers", "bound_L_workers"):
+        for key in ("L_workers", "bound_L_workers", "noise_workers0"):
             if doc.get(key) is not None:
                 doc[key] = np.asarray(doc[key], dtype=np.float64)
         return cls(**doc)

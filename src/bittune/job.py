@@ -183,6 +183,9 @@ class Job:
     prefer: str | None = None  # objective front: bits | seconds | balanced (bittune.front.choose)
     #: The server's compressor spec (downlink.compressor, a parse_spec dict); None: dense broadcast.
     downlink: dict | None = None
+    #: Stochastic gradients: rows b each worker draws with replacement per gradient evaluation
+    #: (docs/theory.md §2.12); None: full local gradients. Checked against the shards by open_job.
+    minibatch: int | None = None
 
 
 #: Top-level keys that hold a single value ("" section).
@@ -196,6 +199,9 @@ TOP = {
     "prefer": Param("choice", options=PREFER),
     # model plugin: "module:function" or "path/file.py:function" (runs only with --allow-code)
     "plugin": Param("str"),
+    # stochastic gradients: b rows per worker per gradient evaluation, drawn with replacement
+    # (absent: full local gradients); at most the smallest worker's rows (workspace.open_job)
+    "minibatch": Param("int", low=1),
 }
 
 #: Section name -> key -> constraint. Declare a new section here.
@@ -404,7 +410,7 @@ def parse_job(mapping: dict, *, base_dir: Path, source: str, digest: str | None 
         model_options=_model_options(top, values, base_dir),
         network=NetworkSpec(**values["network"], workers=links), downlink=downlink,
         raw=deepcopy(mapping), digest=digest, assume=AssumeSpec(**values["assume"]),
-        engine=EngineSpec(**values["engine"]),
+        engine=EngineSpec(**values["engine"]), minibatch=top["minibatch"],
     )
 
 

@@ -535,8 +535,8 @@ def probe_workspace(ws, *, strict: bool = True,
             run_rounds=spec.run_rounds, points_per_run=spec.points_per_run, power_iters=spec.power_iters,
             safety=spec.safety, lower_bound=spec.lower_bound, gradient_tolerance=spec.gradient_tolerance,
             strict=strict,
-            sample_smoothness=("vr_marina" in ws.job.search.methods if sample_smoothness is None
-                               else sample_smoothness))
+            sample_smoothness=(("vr_marina" in ws.job.search.methods or getattr(ws.job, "minibatch", None) is not None)
+                               if sample_smoothness is None else sample_smoothness))
     except ValueError as exc:  # every ValueError here is about the job's input
         key = "probe.lower_bound" if "lower_bound" in str(exc) else "start"
         raise InputError(f"{key}: {exc}", source=str(ws.job.path)) from None
@@ -548,4 +548,13 @@ def probe_workspace(ws, *, strict: bool = True,
             raise InputError(f"assume.pl_mu: must be <= L = {constants.L:.4g} (the PL constant never exceeds the "
                              f"smoothness constant), got {mu:g}", source=str(ws.job.path))
         constants.pl_mu = float(mu)
+    b = getattr(ws.job, "minibatch", None)
+    if b is not None:  # stochastic gradients: sigma^2 at x0 and along the runs (docs/theory.md §2.12)
+        from .noise import noise_constants
+
+        for key, value in noise_constants(ws.problem, ws.x0, report.points[1:], b, seed=spec.seed).items():
+            setattr(constants, key, value)
+        sizes = np.asarray(ws.problem.worker_sizes, dtype=np.float64)
+        constants.samples_per_worker = float(sizes.mean())
+        constants.min_samples_per_worker = int(sizes.min())
     return constants, report

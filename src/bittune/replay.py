@@ -18,9 +18,10 @@ from .config import Config, check_config_fits
 from .job import Job, data_digest
 from .simulate import Trajectory, simulate
 from .search import SYNCED, link_kwargs, stall_window
-from .workspace import Workspace
+from ._yaml import REQUIRED, Param, check_mapping
+from .workspace import Workspace, check_minibatch
 
-__all__ = ["replay", "summarize", "stored_reference", "config_seeds", "check_not_swapped"]
+__all__ = ["replay", "summarize", "stored_reference", "config_seeds", "check_not_swapped", "config_minibatch"]
 
 
 def check_not_swapped(config_path, job_path) -> None:
@@ -77,7 +78,27 @@ def replay(ws: Workspace, cfg: Config, *, seeds, source: str = "config") -> list
                     max_bits_per_worker=ws.job.budget.max_bits_per_worker, loss_ref=ws.loss_ref,
                     stall_window=stall_window(cfg.method, params.get("sync_probability")),
                     precision=cfg.precision or "float64",  # as tuned, whatever the job says now
-                    **link_kwargs(p, None, config_downlink(cfg, source), cfg.method))
+                    **link_kwargs(p, None, config_downlink(cfg, source), cfg.method,
+                                  minibatch=config_minibatch(cfg, p, source)))
+
+
+def config_minibatch(cfg: Config, problem=None, source: str = "config") -> int | None:
+    """The minibatch b a config was tuned with (its ``gradients.minibatch``: stochastic gradients,
+    docs/theory.md §2.12), else None (full batch); checked against ``problem``'s shards."""
+    sec = cfg.extra.get("gradients")
+    if sec is None:
+        return None
+    if not isinstance(sec, dict):
+        raise InputError(f"{source}: gradients: must be a mapping with the key minibatch")
+    problems: list[str] = []
+    got = check_mapping({"minibatch": sec.get("minibatch")}, {"minibatch": Param("int", low=1, default=REQUIRED)},
+                        prefix="gradients.", problems=problems)
+    if problems:
+        raise InputError(problems, source=source)
+    b = got.get("minibatch")
+    if problem is not None:
+        check_minibatch(b, problem, source=source, key="gradients.minibatch")
+    return b
 
 
 def config_downlink(cfg: Config, source: str = "config") -> dict | None:

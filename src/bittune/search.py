@@ -225,7 +225,7 @@ class Space:
             sync_mult = trial.suggest_float(f"{method}.sync_mult", *s.sync_range, log=True)
         if method == "pp_marina":
             clients = trial.suggest_int("pp_marina.clients", 1, self.constants.n_workers, log=True)
-        if method == "vr_marina":
+        if method == "vr_marina" and self.constants.minibatch is None:  # else the job's b (§2.12)
             minibatch = trial.suggest_int("vr_marina.minibatch", 1, self.max_minibatch, log=True)
         if method == "diana":
             shift_mult = trial.suggest_float("diana.shift_mult", *s.shift_range, log=True)
@@ -296,7 +296,7 @@ class Space:
                 base[f"{method}.sync_mult"] = _clip(1.0, s.sync_range)
             if method == "pp_marina":
                 base["pp_marina.clients"] = int(self.constants.n_workers)
-            if method == "vr_marina":
+            if method == "vr_marina" and self.constants.minibatch is None:
                 base["vr_marina.minibatch"] = int(self.theory(method, comp).minibatch)
             if method == "diana":
                 base["diana.shift_mult"] = _clip(1.0, s.shift_range)
@@ -403,6 +403,7 @@ class Objective:
     #: studies only; docs/design.md, "The front")
     front: bool = False
     downlink: dict | None = None  # the job's downlink.compressor spec; None: dense broadcast
+    minibatch: int | None = None  # the job's minibatch b (stochastic gradients); None: full batch
     _best: float = field(default=math.inf, repr=False)
 
     def __call__(self, trial: optuna.Trial) -> float:
@@ -417,7 +418,7 @@ class Objective:
 
     def link_kwargs(self, method: str) -> dict:
         """simulate()'s network and downlink arguments for this objective and ``method``."""
-        return link_kwargs(self.problem, self.network, self.downlink, method)
+        return link_kwargs(self.problem, self.network, self.downlink, method, minibatch=self.minibatch)
 
     def plan(self, trial: optuna.Trial, cap: float | None) -> "TrialPlan":
         """Draw ``trial``'s candidate and set up what its simulation needs (cap: the study's cost cap)."""
@@ -509,12 +510,15 @@ class Objective:
         return min(caps) if caps else None
 
 
-def link_kwargs(problem, network, downlink: dict | None, method: str | None = None) -> dict:
-    """simulate()'s ``network`` (an uneven NetworkModel, else left out) and ``downlink`` (the
-    server's compressor built from the job's spec, else left out) keyword arguments. A method
+def link_kwargs(problem, network, downlink: dict | None, method: str | None = None, *,
+                minibatch: int | None = None) -> dict:
+    """simulate()'s ``network`` (an uneven NetworkModel, else left out), ``downlink`` (the
+    server's compressor built from the job's spec, else left out) and ``minibatch`` (the job's b,
+    else left out: full batch) keyword arguments. A method
     without a bidirectional form (a baseline such as gd; the job admits only bidirectional
-    search methods with a downlink) keeps the dense broadcast."""
-    out = {}
+    search methods with a downlink) keeps the dense broadcast; every method, baselines included,
+    runs on the job's minibatch (the run a user launches, docs/design.md "Stochastic gradients")."""
+    out = {} if minibatch is None else {"minibatch": int(minibatch)}
     if downlink is not None and (method is None or method in BIDIRECTIONAL):
         out["downlink"] = make_compressor(downlink, problem.dim, key="downlink.compressor",
                                           n_workers=problem.n_workers)

@@ -220,7 +220,8 @@ def _batches(ws, candidates: list[Candidate], seeds: list[int], network=None) ->
                               x0=ws.x0, params=params, max_bits_per_worker=job.budget.max_bits_per_worker,
                               stall_window=stall_window(first.method, params.get("sync_probability")),
                               loss_ref=ws.loss_ref, precision=job.engine.precision,
-                              **link_kwargs(ws.problem, network, getattr(job, "downlink", None), first.method))))
+                              **link_kwargs(ws.problem, network, getattr(job, "downlink", None), first.method,
+                                            minibatch=getattr(job, "minibatch", None)))))
     return out
 
 

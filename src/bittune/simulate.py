@@ -15,6 +15,7 @@ import numpy as np
 
 from ._random import trajectory_keys
 from .methods import dense_bits, make_method
+from .methods._minibatch import minibatch_weights
 from .problems.base import PRECISIONS
 
 __all__ = ["Trajectory", "STATUS", "simulate", "absolute_target", "PRECISIONS"]
@@ -104,6 +105,7 @@ def simulate(
     precision: str = "float64",
     network=None,
     downlink=None,
+    minibatch: int | None = None,
 ) -> list[Trajectory]:
     """Simulate ``len(seeds)`` trajectories of ``method`` at once.
 
@@ -138,6 +140,14 @@ def simulate(
     (NetworkModel.round_seconds, waiting for the workers the method waited for) into
     ``Trajectory.seconds_curve``; an even one changes no trajectory. The broadcast is dense unless ``downlink`` is the server's
     compressor (a bidirectional method, docs/theory.md §2.11).
+
+    ``minibatch`` b (None: full local gradients) runs the method on stochastic gradients: each
+    round every worker draws b of its rows with replacement (keyed by trajectory and round,
+    ``_minibatch.minibatch_weights``) and the method gets the minibatch means
+    (:meth:`Method.stochastic_grads`; MARINA's differences on the same rows at both points,
+    VR-MARINA's b' fixed to b); gradient evaluations count b per worker per estimate
+    (docs/theory.md §2.12, docs/design.md "Stochastic gradients"). The stopping metric stays the
+    full ||grad f(x^k)||^2.
     """
     seeds = np.atleast_1d(np.asarray(seeds, dtype=np.int64))
     B, d, n = seeds.shape[0], problem.dim, problem.n_workers
@@ -153,7 +163,17 @@ def simulate(
     step_all = np.broadcast_to(np.asarray(step_size, dtype=dtype), (B,)).copy()
     meth = make_method(method, compressor=compressor, n_workers=n, dim=d, batch=B, **(params or {}),
                        **({} if downlink is None else {"downlink": downlink}))
+    if minibatch is not None:
+        if not getattr(problem, "has_samples", False):
+            raise ValueError(f"minibatch: the model {getattr(problem, 'name', '?')!r} has no per-sample gradients")
+        if isinstance(minibatch, (bool, np.bool_)) or int(minibatch) != minibatch or minibatch < 1:
+            raise ValueError(f"minibatch must be an integer >= 1, got {minibatch!r}")
+        if minibatch > int(np.min(problem.worker_sizes)):
+            raise ValueError(f"minibatch {minibatch} is larger than the smallest worker's "
+                             f"{int(np.min(problem.worker_sizes))} rows")
+        meth.use_minibatch(int(minibatch))
     meth.bind(problem)
+    sampled = minibatch is not None and not meth.own_rows  # the engine draws the rows
     x0 = np.zeros(d) if x0 is None else np.asarray(x0, dtype=np.float64)
     X = np.broadcast_to(x0.astype(dtype), (B, d)).copy()
 
@@ -172,6 +192,7 @@ def simulate(
     # Models without rows (a quadratic test problem) count one evaluation per local gradient.
     sizes = getattr(problem, "worker_sizes", None)
     sizes = np.ones(n) if sizes is None else np.asarray(sizes, dtype=np.float64)
+    m_max = int(problem.shards.m_max) if sampled else 0
     gn_hist = [gn.copy()]
     up_hist = [up.copy()]
     down_hist = [down.copy()]
@@ -216,7 +237,11 @@ def simulate(
         if active.size == 0:
             break
         with np.errstate(over="ignore", invalid="ignore"):
-            g, bits = meth.direction(grads, keys, k, X)
+            if sampled:
+                W = minibatch_weights(keys, k, sizes, np.full(active.size, float(minibatch)), m_max)
+                g, bits = meth.direction(meth.stochastic_grads(X, W), keys, k, X)
+            else:
+                g, bits = meth.direction(grads, keys, k, X)
         up[active] += bits.mean(axis=1)
         used = meth.gradient_evals()
         evals[active] += sizes.mean() if used is None else used.mean(axis=1)

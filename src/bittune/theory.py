@@ -245,6 +245,8 @@ def vr_marina_rule(compressor: Compressor, constants: Constants, *, target: floa
                          "per-sample gradients, measured by the probe)")
     m_min = int(c.min_samples_per_worker or c.samples_per_worker)
     b = default_minibatch([m_min]) if minibatch is None else minibatch
+    if getattr(c, "minibatch", None) is not None:  # the job's minibatch fixes b' (docs/theory.md §2.12)
+        b = c.minibatch
     if isinstance(b, (bool, np.bool_)) or not isinstance(b, (int, np.integer)) or b < 1:
         raise ValueError(f"minibatch must be an integer >= 1, got {minibatch!r}")
     b, m = int(b), float(c.samples_per_worker)
@@ -458,8 +460,15 @@ def theory_point(method: str, compressor: Compressor | str | Mapping, constants:
         if "minibatch" not in inspect.signature(rule).parameters:
             raise ValueError(f"minibatch applies to vr_marina only, not to {method}")
         kwargs["minibatch"] = minibatch
+    stochastic = getattr(constants, "minibatch", None) is not None
+    if stochastic and method != "vr_marina":  # the job's minibatch: the stochastic forms (§2.12)
+        from .stochastic_theory import STOCHASTIC_RULES
+
+        rule = STOCHASTIC_RULES[method]
+        kwargs = {k: v for k, v in kwargs.items() if k in inspect.signature(rule).parameters}
     point = rule(comp, constants, target=target, **kwargs)
-    if constants.pl_mu is not None and method in PL_METHODS:
+    # The PL forms have no noise term: with a minibatch only VR-MARINA (full sync rounds) keeps one.
+    if constants.pl_mu is not None and method in PL_METHODS and (not stochastic or method == "vr_marina"):
         point = pl_point(point, comp, constants, target=target, alpha=kwargs.get("alpha"))
     return point
 

@@ -233,7 +233,7 @@ def run_search(prep: Prepared, *, run_dir: Path, storage_url: str, log, warm: li
                                   max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                                   seeds=search_seeds(spec), worker=0, network=prep.network, loss_ref=ws.loss_ref,
                                   precision=job.engine.precision, front=job.objective == "front",
-                                  downlink=job.downlink)
+                                  downlink=job.downlink, minibatch=job.minibatch)
             run_trials(open_study(store, name, sampler_seed=sampler_seeds[0], pruner=spec.pruner), objective,
                        budget=spec.trials)
         else:
@@ -391,7 +391,7 @@ def worker_main(job_path: str, storage_url: str, name: str, budget: int | None =
                               max_rounds=job.budget.max_rounds, max_bits=job.budget.max_bits_per_worker,
                               seeds=search_seeds(job.search), worker=index, network=network, loss_ref=ws.loss_ref,
                               precision=job.engine.precision, front=job.objective == "front",
-                              downlink=job.downlink)
+                              downlink=job.downlink, minibatch=job.minibatch)
         return run_trials(study, objective, budget=budget or int(attrs.get("budget", job.search.trials)))
 
 
@@ -544,6 +544,13 @@ def _config_doc(prep: Prepared, sel: Selection, name: str, storage: str, output:
     if job.downlink is not None:  # EF21-BC (docs/theory.md §2.11)
         doc["downlink"] = {"compressor": dict(job.downlink),
                            "mean_bits_per_worker": sig(w["mean_downlink_bits_per_worker"])}
+    if job.minibatch is not None:  # stochastic gradients (docs/theory.md §2.12); replay reads minibatch
+        doc["gradients"] = {
+            "minibatch": int(job.minibatch),
+            "noise_variance": sig(constants.noise_variance), "noise_variance_x0": sig(constants.noise_variance0),
+            "note": "every worker draws minibatch rows of its shard with replacement per gradient evaluation; "
+                    "noise_variance: the variance of one worker's minibatch gradient (mean over workers), the "
+                    "largest over the probe points (x0 and along its runs)"}
     if sel.gd is not None:
         doc["baseline"] = _gd_section(sel, prep)
     doc["gains"] = {"objective": job.objective, "validation_seeds": len(sel.seeds),

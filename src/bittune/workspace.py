@@ -25,7 +25,7 @@ from .job import Job
 from .problems import Problem, build_problem, label_kind
 from .simulate import absolute_target
 
-__all__ = ["Workspace", "open_job", "reference_loss", "model_convexity", "REFERENCE_OPTIONS"]
+__all__ = ["Workspace", "open_job", "reference_loss", "model_convexity", "REFERENCE_OPTIONS", "check_minibatch"]
 
 #: L-BFGS-B settings for f_ref (scipy.optimize.minimize option names). Tight on
 #: purpose: f_ref should be far more accurate than any loss gap a job asks for;
@@ -130,6 +130,7 @@ def open_job(job: Job, *, reference: dict | None = None) -> Workspace:
         raise InputError(f"data: {dataset.n_samples} samples x {dataset.n_features} features over "
                          f"{w.count} workers do not fit in memory ({dataset.source}); is a feature "
                          f"index far too large?", source=str(job.path)) from None
+    check_minibatch(job.minibatch, problem, source=str(job.path))
     grads, losses = problem.local_grads(x0[None, :], with_loss=True)
     if not (np.all(np.isfinite(grads)) and np.all(np.isfinite(losses))):
         if job.model == "plugin":  # the user's code is the culprit, not the start settings
@@ -158,6 +159,20 @@ def open_job(job: Job, *, reference: dict | None = None) -> Workspace:
         raise InputError("target.grad_norm_sq: the gradient at the start point is zero, so a "
                          "relative target is 0; set target.relative: false", source=str(job.path))
     return Workspace(job=job, dataset=dataset, parts=parts, problem=problem, x0=x0, target=target)
+
+
+def check_minibatch(b: int | None, problem, *, source: str, key: str = "minibatch") -> None:
+    """A minibatch b (None: full batch) must fit every worker's shard (b <= min_i m_i, rows drawn with
+    replacement from each) and needs a model with per-sample gradients; else InputError naming ``key``."""
+    if b is None:
+        return
+    if not getattr(problem, "has_samples", False):
+        raise InputError(f"{key}: the model {getattr(problem, 'name', '?')!r} has no per-sample gradients "
+                         f"(a plugin gives whole-worker losses only); remove {key}", source=source)
+    sizes = np.asarray(problem.worker_sizes)
+    if b > int(sizes.min()):
+        raise InputError(f"{key}: must be at most the smallest worker's row count {int(sizes.min())} "
+                         f"(worker {int(np.argmin(sizes))}), got {b}", source=source)
 
 
 def model_convexity(model: str, regularization: float) -> str:

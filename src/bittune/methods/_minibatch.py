@@ -16,7 +16,7 @@ import numpy as np
 
 from .._random import STREAM, uniform
 
-__all__ = ["minibatch_weights"]
+__all__ = ["SameRows", "minibatch_weights", "paired_grads"]
 
 
 def minibatch_weights(keys: np.ndarray, round_: int, sizes: np.ndarray, b: np.ndarray, m_max: int) -> np.ndarray:
@@ -35,3 +35,41 @@ def minibatch_weights(keys: np.ndarray, round_: int, sizes: np.ndarray, b: np.nd
     wi = np.broadcast_to(np.arange(n)[None, :, None], rows.shape)
     np.add.at(W, (bi, wi, rows), np.where(live, 1.0 / b[:, None, None], 0.0))
     return W
+
+
+def paired_grads(problem, X: np.ndarray, X_prev: np.ndarray, W: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Minibatch gradients at X and at X_prev on the same rows W, one oracle call on the stacked
+    points: a MARINA-type difference then has no sampling noise of its own beyond the rows' spread
+    (docs/theory.md §2.5, §2.12)."""
+    B = X.shape[0]
+    both = problem.weighted_grads(np.concatenate([X, X_prev]), np.concatenate([W, W]))
+    return both[:B], both[B:]
+
+
+class SameRows:
+    """Stochastic MARINA and PP-MARINA (a mixin before :class:`~bittune.methods.base.Method`): each
+    round's estimate at x^k is the minibatch mean on the round's rows, and the gradient difference
+    grad f_i(x^k) - grad f_i(x^{k-1}) is taken on those same rows at both points (one stacked
+    oracle call, :func:`paired_grads`; docs/theory.md §2.12). :meth:`prev_grads` gives the
+    difference's second half; :meth:`count_evals` the per-sample gradients of the round (b on a
+    sync round, 2b where a difference was computed)."""
+
+    def stochastic_grads(self, X, W):
+        if "x" not in self.state:  # round 0: g^0 is a minibatch estimate
+            est, self._prev_rows = self.problem.weighted_grads(X, W), None
+        else:
+            est, self._prev_rows = paired_grads(self.problem, X, self.state["x"], W)
+        self.state["x"] = np.array(X, copy=True)
+        self._evals = np.full((X.shape[0], self.n), float(self.rows))
+        return est
+
+    def prev_grads(self, fallback: np.ndarray) -> np.ndarray:
+        """The gradients at x^{k-1} to subtract: on this round's rows (minibatch), else ``fallback``
+        (the full local gradients kept from the last round)."""
+        return fallback if self.rows is None else self._prev_rows
+
+    def count_evals(self, differences: np.ndarray) -> None:
+        """Per-sample gradients of a round: 2b for the workers marked in ``differences`` (B, n) (both
+        points on the same rows), b for the others (one estimate). No-op for full gradients."""
+        if self.rows is not None:
+            self._evals = np.where(differences, 2.0 * self.rows, float(self.rows))

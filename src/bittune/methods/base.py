@@ -30,6 +30,9 @@ class Method(ABC):
     params: ClassVar[dict[str, object]] = {}
     #: Has a published bidirectional form: takes a downlink compressor (params["downlink"]).
     bidirectional: ClassVar[bool] = False
+    #: Draws its own minibatch rows and takes full local gradients from the engine even when a
+    #: minibatch is set (VR-MARINA); the others get :meth:`stochastic_grads`.
+    own_rows: ClassVar[bool] = False
 
     def __init__(self, *, compressor, n_workers: int, dim: int, batch: int, **params):
         self.compressor = compressor
@@ -39,6 +42,10 @@ class Method(ABC):
             raise ValueError(f"{self.name}: has no bidirectional form, cannot take a downlink compressor")
         self._down_bits: np.ndarray | None = None  # (B,) broadcast bits of the last round
         self._waited: np.ndarray | None = None  # (B, n) workers the last round waited for
+        #: The job's minibatch b (rows per worker per gradient evaluation, :meth:`use_minibatch`);
+        #: None: full local gradients.
+        self.rows: int | None = None
+        self._evals: np.ndarray | None = None  # (B, n) per-sample gradients of the last round
         self.n = int(n_workers)
         self.d = int(dim)
         self.p: dict[str, np.ndarray] = {}
@@ -60,6 +67,19 @@ class Method(ABC):
         """Attach the simulated problem (the engine calls this once, before round 0)."""
         self.problem = problem
 
+    def use_minibatch(self, rows: int) -> None:
+        """Run on stochastic gradients: b = ``rows`` rows per worker per gradient evaluation, drawn
+        with replacement (the engine calls this before :meth:`bind`; docs/theory.md §2.12)."""
+        self.rows = int(rows)
+
+    def stochastic_grads(self, X: np.ndarray, W: np.ndarray) -> np.ndarray | None:
+        """The per-worker gradient estimates (B, n, d) that :meth:`direction` gets in place of the
+        full local gradients when a minibatch is set: the minibatch means on the round's rows W
+        (``_minibatch.minibatch_weights``), b per worker. None: the method takes the full local
+        gradients and draws its own rows (VR-MARINA)."""
+        self._evals = np.full((X.shape[0], self.n), float(self.rows))
+        return self.problem.weighted_grads(X, W)
+
     @abstractmethod
     def direction(
         self, grads: np.ndarray, keys: np.ndarray, round_: int, X: np.ndarray | None = None
@@ -69,8 +89,8 @@ class Method(ABC):
     def gradient_evals(self) -> np.ndarray | None:
         """Per-sample gradients each worker computed in the last :meth:`direction` call, (B, n);
         None for a full local gradient (m_i per worker), which is every method's cost but a
-        minibatch method's."""
-        return None
+        minibatch method's (VR-MARINA, or any method with :meth:`use_minibatch`)."""
+        return self._evals
 
     def downlink_bits(self) -> np.ndarray | None:
         """Bits of the last round's broadcast per worker, (B,); None: one dense vector."""

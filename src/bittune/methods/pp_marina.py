@@ -21,6 +21,9 @@ messages (twice the message if drawn twice, 0 if not drawn), so that mean is
 (total bits sent)/n and totals come out right; it is not what a typical
 worker sends (only r messages are sent, not n).
 
+With a minibatch (the job's ``minibatch``) the gradients are minibatch estimates and each
+difference is taken on the same b rows at both points, as for MARINA (docs/theory.md §2.12).
+
 Time (uneven network, cost.NetworkModel.round_seconds): a compressed round waits
 for the drawn clients only (:meth:`Method.waited`), a sync round for all n.
 """
@@ -30,12 +33,13 @@ from __future__ import annotations
 import numpy as np
 
 from .._random import STREAM, uniform
+from ._minibatch import SameRows
 from .base import Method
 
 __all__ = ["PPMARINA"]
 
 
-class PPMARINA(Method):
+class PPMARINA(SameRows, Method):
     name = "pp_marina"
     #: Both defaults depend on n as well as on the compressor: filled in __init__
     #: (clients: r = n; sync_probability: zeta r/(d n), docs/theory.md §2.6, from memory).
@@ -57,7 +61,8 @@ class PPMARINA(Method):
     def direction(self, grads, keys, round_, X=None):
         if "g" not in self.state:
             self.state["g"] = grads.mean(axis=1)
-            self.state["prev"] = grads  # the engine hands a fresh array every round
+            if self.rows is None:
+                self.state["prev"] = grads  # the engine hands a fresh array every round
             return self.state["g"].copy(), self._dense(grads)
         B, n, _ = grads.shape
         sync = uniform(keys, round_, STREAM["coin"], (1,))[:, 0] < self.p["sync_probability"]
@@ -67,7 +72,7 @@ class PPMARINA(Method):
         # 0..n-1 up to 2^-53 (u has 53 random bits); the min guards the rounding of n u.
         picks = np.minimum((uniform(keys, round_, STREAM["clients"], (slots,)) * n).astype(np.int64), n - 1)
         live = np.arange(slots)[None, :] < r[:, None]  # (B, slots): draws beyond r_b are unused
-        diff = np.take_along_axis(grads - self.state["prev"], picks[:, :, None], axis=1)
+        diff = np.take_along_axis(grads - self.prev_grads(self.state.get("prev")), picks[:, :, None], axis=1)
         q, qbits = self.compressor.compress(diff, keys, round_)
         g = self.state["g"] + np.where(live[:, :, None], q, 0.0).sum(axis=1) / r[:, None]
         bits = np.zeros((B, n))
@@ -80,6 +85,12 @@ class PPMARINA(Method):
         np.add.at(drawn, at, live)
         drawn[sync] = 1.0
         self._waited = drawn > 0
+        # Minibatch: a drawn client computes its difference once (2b), on a sync round every worker
+        # one estimate (b); a client not drawn computes nothing.
+        self.count_evals(self._waited & ~sync[:, None])
+        if self.rows is not None:
+            self._evals[~self._waited] = 0.0
         self.state["g"] = g
-        self.state["prev"] = grads
+        if self.rows is None:
+            self.state["prev"] = grads
         return g.copy(), bits

@@ -26,7 +26,7 @@ from __future__ import annotations
 import numpy as np
 
 from .._random import STREAM, uniform
-from ._minibatch import minibatch_weights
+from ._minibatch import minibatch_weights, paired_grads
 from .base import Method
 
 __all__ = ["VRMARINA", "default_minibatch"]
@@ -43,6 +43,7 @@ class VRMARINA(Method):
     #: Defaults depend on the worker sizes: filled in __init__ (minibatch: default_minibatch;
     #: sync_probability: min(zeta/d, b'/(m + b')), docs/theory.md §2.5, from memory; m = mean m_i).
     params = {"sync_probability": None, "minibatch": None}
+    own_rows = True  # full local gradients on sync rounds; the differences draw their own rows
 
     def __init__(self, *, compressor, n_workers: int, dim: int, batch: int, **params):
         # Both defaults need the worker sizes: bind() resolves them, before round 0; the base
@@ -51,7 +52,6 @@ class VRMARINA(Method):
         self._batch = batch
         super().__init__(compressor=compressor, n_workers=n_workers, dim=dim, batch=batch,
                          **{**params, **{k: 0.0 for k in self.params}})
-        self._evals: np.ndarray | None = None
 
     def bind(self, problem) -> None:
         super().bind(problem)
@@ -84,8 +84,8 @@ class VRMARINA(Method):
         sync = uniform(keys, round_, STREAM["coin"], (1,))[:, 0] < self.p["sync_probability"]
         b = self.p["minibatch"]
         W = minibatch_weights(keys, round_, self._sizes, b, self._m_max)
-        both = self.problem.weighted_grads(np.concatenate([X, self.state["x"]]), np.concatenate([W, W]))
-        q, bits = self.compressor.compress(both[:B] - both[B:], keys, round_)
+        new, old = paired_grads(self.problem, X, self.state["x"], W)
+        q, bits = self.compressor.compress(new - old, keys, round_)
         g = self.state["g"] + q.mean(axis=1)
         g[sync] = grads[sync].mean(axis=1)
         bits[sync] = self._dense(grads)[sync]
@@ -96,5 +96,8 @@ class VRMARINA(Method):
         self.state["x"] = np.array(X, dtype=np.float64)
         return g.copy(), bits
 
-    def gradient_evals(self):
-        return self._evals  # of the last direction() call, read by the engine right after it
+    def use_minibatch(self, rows: int) -> None:
+        """The job's minibatch fixes b' (docs/theory.md §2.12): a given ``minibatch`` parameter
+        gives way to it; sync rounds keep full local gradients (the finite-sum form)."""
+        super().use_minibatch(rows)
+        self._given["minibatch"] = self.rows
