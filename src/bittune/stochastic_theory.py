@@ -20,9 +20,10 @@ VR-MARINA keeps its own rule with b' = b (:func:`bittune.theory.vr_marina_rule`)
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 from .methods import dense_bits
-from .theory import _point, _rounds
+from .theory import _point, _rounds, ef21_search_anchor
 
 __all__ = [
     "STOCHASTIC_RULES",
@@ -165,8 +166,11 @@ def ef21_sgd_rule(compressor, constants, *, target: float, alpha: float | None =
     rounds, note = _floor_rounds(2.0 * phi0 / gamma, target, 12.0 * s2 / a**2)
     if alpha is not None:
         note = "; ".join(x for x in (note, f"alpha measured {a:.4g} (worst case {compressor.alpha:.4g})") if x)
-    return _point("ef21", compressor, gamma, rounds, dense_bits(c.dim) + rounds * compressor.nominal_bits,
-                  "derived (docs/theory.md §2.12.4) for EF21-SGD, Fatkhullin et al. 2021", note=note)
+    point = _point("ef21", compressor, gamma, rounds, dense_bits(c.dim) + rounds * compressor.nominal_bits,
+                   "derived (docs/theory.md §2.12.4) for EF21-SGD, Fatkhullin et al. 2021", note=note)
+    # The search anchor of the full-batch rule (docs/theory.md §2.9, "Search anchor"): the same step
+    # shrinks with K/d here too, while the good steps do not.
+    return replace(point, **ef21_search_anchor(c))
 
 
 #: The rule per method when the job sets a minibatch (vr_marina keeps its own, b' = b).
