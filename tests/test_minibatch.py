@@ -276,3 +276,20 @@ def test_stochastic_rules_take_over_with_a_minibatch_and_reduce_to_full_batch():
     hi = theory_point("ef21", "top_k:2", _consts(minibatch=4, noise_variance=1e-6), target=eps)
     lo = theory_point("ef21", "top_k:2", _consts(minibatch=4, noise_variance=1e-8), target=eps)
     assert hi.predicted_rounds >= lo.predicted_rounds
+
+
+def test_gradient_passes_count_b_rows_per_estimate():
+    """The cost model's input: with a minibatch a DCGD round computes b per-sample gradients per worker,
+    so gradient_passes = K mean_i(b/m_i) (closed form) and the even network's seconds
+    (latency + passes x compute + bits/bandwidth, docs/design.md "Bits") charge that, not K passes."""
+    from bittune.cost import NetworkModel
+
+    prob, _, _ = _ridge(17)
+    K, b = 25, 2
+    run, = simulate(prob, method="dcgd", compressor=make_compressor("rand_k:2", 4), step_size=0.05, seeds=[3],
+                    target=0.0, max_rounds=K, x0=np.ones(4), minibatch=b)
+    sizes = prob.worker_sizes.astype(float)
+    assert run.gradient_passes == pytest.approx(K * np.mean(b / sizes), rel=1e-12)
+    net = NetworkModel(latency=0.01, uplink_bandwidth=1e6, downlink_bandwidth=1e7, compute_seconds=0.5)
+    want = K * 0.01 + K * np.mean(b / sizes) * 0.5 + run.uplink_bits / 1e6 + run.downlink_bits / 1e7
+    assert net.seconds(run) == pytest.approx(want, rel=1e-12)
