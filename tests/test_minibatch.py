@@ -228,6 +228,8 @@ def test_tune_with_minibatch_writes_the_gradients_section_and_replays_it(tmp_pat
     assert main(["tune", str(tmp_path / "job.yaml"), "-o", str(out)]) == 0
     cfg = yaml.safe_load(out.read_text())
     assert cfg["gradients"]["minibatch"] == 2 and cfg["gradients"]["noise_variance"] > 0
+    report = (tmp_path / "c.run" / "report" / "report.md").read_text()
+    assert "every worker draws 2 of its rows with replacement" in report
     capsys.readouterr()
     assert main(["replay", str(out), "--job", str(tmp_path / "job.yaml"), "--json"]) == 0
     got = json.loads(capsys.readouterr().out)
