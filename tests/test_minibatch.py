@@ -295,3 +295,18 @@ def test_gradient_passes_count_b_rows_per_estimate():
     net = NetworkModel(latency=0.01, uplink_bandwidth=1e6, downlink_bandwidth=1e7, compute_seconds=0.5)
     want = K * 0.01 + K * np.mean(b / sizes) * 0.5 + run.uplink_bits / 1e6 + run.downlink_bits / 1e7
     assert net.seconds(run) == pytest.approx(want, rel=1e-12)
+
+
+@pytest.mark.parametrize("method, spec", [("dcgd", "rand_k:2"), ("marina", "rand_k:2"), ("pp_marina", "rand_k:2"),
+                                          ("ef21", "top_k:2"), ("vr_marina", "rand_k:2")])
+def test_a_stochastic_trajectory_is_the_same_alone_or_in_a_batch(method, spec):
+    """The rows come from (trajectory key, round, stream): a trajectory run alone repeats its run inside a
+    batch with other steps and seeds, bits and iterates alike (DEVELOPERS.md, Randomness; exact up to the
+    rounding of a batched matrix product, 1e-12)."""
+    prob, _, _ = _ridge(18, sizes=(9, 7, 11))
+    comp = make_compressor(spec, 4)
+    kw = {"method": method, "compressor": comp, "target": 0.0, "max_rounds": 40, "x0": np.ones(4), "minibatch": 3}
+    batch = simulate(prob, step_size=[0.05, 0.2, 0.1], seeds=[4, 5, 6], **kw)
+    alone = simulate(prob, step_size=0.2, seeds=[5], **kw)[0]
+    assert batch[1].uplink_bits == alone.uplink_bits and batch[1].gradient_evals == alone.gradient_evals
+    np.testing.assert_allclose(batch[1].x, alone.x, rtol=0, atol=1e-12)
