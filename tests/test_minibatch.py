@@ -228,6 +228,8 @@ def test_tune_with_minibatch_writes_the_gradients_section_and_replays_it(tmp_pat
     assert main(["tune", str(tmp_path / "job.yaml"), "-o", str(out)]) == 0
     cfg = yaml.safe_load(out.read_text())
     assert cfg["gradients"]["minibatch"] == 2 and cfg["gradients"]["noise_variance"] > 0
+    report = (tmp_path / "c.run" / "report" / "report.md").read_text()
+    assert "every worker draws 2 of its rows with replacement" in report
     capsys.readouterr()
     assert main(["replay", str(out), "--job", str(tmp_path / "job.yaml"), "--json"]) == 0
     got = json.loads(capsys.readouterr().out)
@@ -276,3 +278,35 @@ def test_stochastic_rules_take_over_with_a_minibatch_and_reduce_to_full_batch():
     hi = theory_point("ef21", "top_k:2", _consts(minibatch=4, noise_variance=1e-6), target=eps)
     lo = theory_point("ef21", "top_k:2", _consts(minibatch=4, noise_variance=1e-8), target=eps)
     assert hi.predicted_rounds >= lo.predicted_rounds
+
+
+def test_gradient_passes_count_b_rows_per_estimate():
+    """The cost model's input: with a minibatch a DCGD round computes b per-sample gradients per worker,
+    so gradient_passes = K mean_i(b/m_i) (closed form) and the even network's seconds
+    (latency + passes x compute + bits/bandwidth, docs/design.md "Bits") charge that, not K passes."""
+    from bittune.cost import NetworkModel
+
+    prob, _, _ = _ridge(17)
+    K, b = 25, 2
+    run, = simulate(prob, method="dcgd", compressor=make_compressor("rand_k:2", 4), step_size=0.05, seeds=[3],
+                    target=0.0, max_rounds=K, x0=np.ones(4), minibatch=b)
+    sizes = prob.worker_sizes.astype(float)
+    assert run.gradient_passes == pytest.approx(K * np.mean(b / sizes), rel=1e-12)
+    net = NetworkModel(latency=0.01, uplink_bandwidth=1e6, downlink_bandwidth=1e7, compute_seconds=0.5)
+    want = K * 0.01 + K * np.mean(b / sizes) * 0.5 + run.uplink_bits / 1e6 + run.downlink_bits / 1e7
+    assert net.seconds(run) == pytest.approx(want, rel=1e-12)
+
+
+@pytest.mark.parametrize("method, spec", [("dcgd", "rand_k:2"), ("marina", "rand_k:2"), ("pp_marina", "rand_k:2"),
+                                          ("ef21", "top_k:2"), ("vr_marina", "rand_k:2")])
+def test_a_stochastic_trajectory_is_the_same_alone_or_in_a_batch(method, spec):
+    """The rows come from (trajectory key, round, stream): a trajectory run alone repeats its run inside a
+    batch with other steps and seeds, bits and iterates alike (DEVELOPERS.md, Randomness; exact up to the
+    rounding of a batched matrix product, 1e-12)."""
+    prob, _, _ = _ridge(18, sizes=(9, 7, 11))
+    comp = make_compressor(spec, 4)
+    kw = {"method": method, "compressor": comp, "target": 0.0, "max_rounds": 40, "x0": np.ones(4), "minibatch": 3}
+    batch = simulate(prob, step_size=[0.05, 0.2, 0.1], seeds=[4, 5, 6], **kw)
+    alone = simulate(prob, step_size=0.2, seeds=[5], **kw)[0]
+    assert batch[1].uplink_bits == alone.uplink_bits and batch[1].gradient_evals == alone.gradient_evals
+    np.testing.assert_allclose(batch[1].x, alone.x, rtol=0, atol=1e-12)

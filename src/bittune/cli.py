@@ -150,6 +150,10 @@ def _print_probe(ws, constants, report) -> None:
           f"heterogeneity (1/n) sum ||grad f_i - grad f||^2 = {constants.heterogeneity0:.4g}")
     print(f"probe cost: {report.oracle_calls} oracle calls on {len(report.points)} probe points, "
           f"{report.seconds:.2f} s; {report.raised} estimates raised to a secant ratio")
+    if constants.minibatch is not None:  # docs/theory.md §2.12
+        print(f"gradient noise (minibatch {constants.minibatch}, rows with replacement): sigma^2 = "
+              f"{constants.noise_variance0:.4g} at x0, {constants.noise_variance:.4g} the largest over the probe "
+              f"points (variance of one worker's minibatch gradient, mean over workers)")
     st = report.sample_stability
     if st is not None:
         moved = ", ".join(f"{k} {v:.3f}" if v is not None else f"{k} -" for k, v in st["ratio"].items())

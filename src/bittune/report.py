@@ -531,7 +531,9 @@ def _document(s: dict, data: dict, figures: dict, *, drift, extra_sections) -> t
                  ("p", f"Job {s['job']}; config {s['config']}; study {s['study']} in {s['storage']}."),
                  ("p", f"Model {prob['model']}, {prob['samples']:,} samples, d = {prob['dimension']}, "
                        f"{prob['workers']} workers (sizes {min(sizes):,}–{max(sizes):,}); "
-                       f"target {goal}.")]
+                       f"target {goal}." + (f" Stochastic gradients: every worker draws {prob['minibatch']} of its "
+                                            f"rows with replacement per gradient evaluation."
+                                            if prob.get("minibatch") else ""))]
     extras = "".join(f", {name} {_fmt(w.get(k))}" for k, name in (
         ("sync_probability", "sync probability"), ("shift_rate", "shift rate"), ("clients", "clients per round"),
         ("minibatch", "minibatch b'")) if w.get(k) is not None)

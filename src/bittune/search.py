@@ -433,9 +433,15 @@ class Objective:
             cost_at = lambda k, bits: bits  # noqa: E731
         else:
             net = self.network
-            # Full local gradients per round: 1, or VR-MARINA's expected p + (1-p) 2b'/m_i.
+            # Full local gradients per round: 1, VR-MARINA's expected p + (1-p) 2b'/m_i, or a minibatch's.
             passes = 1.0
-            if cand.minibatch is not None:
+            if self.minibatch is not None and cand.method != "vr_marina":
+                # The job's minibatch (docs/theory.md §2.12): b/m_i per estimate, a MARINA-type
+                # difference 2b/m_i (an upper bound for PP-MARINA, whose undrawn clients compute none).
+                per = float(np.mean(self.minibatch / self.problem.worker_sizes))
+                p = cand.sync_probability if cand.method in SYNCED else 1.0
+                passes = p * per + (1.0 - p) * 2.0 * per
+            elif cand.minibatch is not None:
                 p = cand.sync_probability
                 passes = p + (1.0 - p) * float(np.mean(2.0 * cand.minibatch / self.problem.worker_sizes))
             # The objective's one seconds formula, with the dense broadcast of every round.

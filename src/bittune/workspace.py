@@ -93,6 +93,8 @@ class Workspace:
             "model": self.job.model,
             "target_kind": self.target_kind,
         }
+        if self.job.minibatch is not None:  # stochastic gradients (docs/theory.md §2.12)
+            out["minibatch"] = int(self.job.minibatch)
         if self.reference is None:
             out["target_grad_norm_sq"] = float(self.target)
         else:
