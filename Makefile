@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: install demo test bench bench-tuning bench-breadth bench-scale bench-quality clean
+.PHONY: install demo test bench bench-tuning bench-breadth bench-scale bench-quality bench-realistic clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -41,6 +41,10 @@ bench-scale: $(STAMP)
 
 bench-quality: $(STAMP)
 	nice -n 5 $(PY) benchmarks/quality.py
+
+# About 5 minutes on 2 cores: minibatch steps, stochastic replay, fronts on two networks, transfer.
+bench-realistic: $(STAMP)
+	nice -n 5 $(PY) benchmarks/realistic.py
 
 clean:
 	rm -rf $(VENV) build src/*.egg-info .pytest_cache runs

@@ -37,3 +37,16 @@ def test_other_rules_have_no_anchor():
     for method, comp in (("marina", "rand_k:1"), ("diana", "rand_k:1"), ("dcgd", "rand_k:2")):
         t = theory_point(method, comp, c, target=1e-6)
         assert t.search_anchor is None and t.search_range is None
+
+
+def test_ef21_stochastic_rule_keeps_the_anchor():
+    # With a minibatch EF21 takes its stochastic form (docs/theory.md §2.12.4, our derivation:
+    # gamma = 1/(L + 4 L_QM/alpha)); its search anchor stays 1/L, L = 4 in closed form as above.
+    from dataclasses import replace
+
+    c = replace(_diag_constants(np.array([4.0, 2.0, 1.0, 0.5, 0.25, 0.1, 0.1, 0.1, 0.1, 0.1])),
+                minibatch=8, noise_variance=1e-3, noise_variance0=1e-3)
+    t = theory_point("ef21", "top_k:2", c, target=1e-2)
+    assert t.step_size == pytest.approx(1.0 / (4.0 + 4.0 * 4.0 / 0.2), rel=1e-12)
+    assert t.search_anchor == pytest.approx(0.25, rel=1e-12)
+    assert t.search_range == EF21_ANCHOR_RANGE
