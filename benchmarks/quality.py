@@ -34,7 +34,7 @@ import optuna
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from tuning import (  # noqa: E402  (the sibling script's shared helpers)
-    D, Log, SEED, check, grid_best, make_data, paired_interval, plain_optuna, print_four, ratio_text, run_tune,
+    D, Log, SEED, check, grid_best, make_data, load_text, paired_interval, plain_optuna, print_four, ratio_text, run_tune,
     validations, write_job)
 
 from bittune.job import load_job  # noqa: E402
@@ -45,35 +45,45 @@ from bittune.workspace import open_job  # noqa: E402
 
 #: The method and compressor of each comparison (issue 16).
 PAIRS = {"ef21": "top_k", "diana": "rand_k", "marina": "perm_k", "pp_marina": "rand_k"}
-#: Grid in theory units. Every K of [1, d] for a method with one density-like axis only (EF21),
-#: so that the grid holds more than ten times the tuner's evaluations.
+#: Grid in theory units, each method's at least ten times bittune's ~70 evaluations (60 trials and
+#: the selection's re-runs), so that the "a tenth of the grid's evaluations" goal can hold.
+#: EF21: every K of [1, d] (one density-like axis only) x 13 steps.
 STEPS = tuple(2.0 ** j for j in range(13))  # x1 .. x4096 the theory step
 MULTS = (0.25, 0.5, 1.0, 2.0, 4.0, 8.0)  # sync-probability or shift-rate multipliers
 GRID_K = 11
+#: MARINA + PermK has one density: finer step and sync axes instead (37 x 21 = 777 points).
+PERM_STEPS = tuple(2.0 ** (j / 3) for j in range(-3, 34))  # x0.5 .. x2048
+PERM_MULTS = tuple(2.0 ** (j / 4) for j in range(-8, 13))  # x0.25 .. x8
+#: PP-MARINA also draws its clients r (bittune and plain Optuna search r in [1, n]): 6 densities x
+#: 3 client counts x 4 sync multipliers x 13 steps = 936 points.
+PP_K, PP_CLIENTS, PP_MULTS = 6, (2, 5, 10), (0.5, 1.0, 2.0, 4.0)
 QUICK_STEPS, QUICK_MULTS = tuple(4.0 ** j for j in range(5)), (0.5, 2.0)
 
 
 def grid(space: Space, method: str, name: str, *, quick: bool) -> list:
     """Distinct candidates of the method's grid (min(1, mult x theory) merges some)."""
+    steps, mults, clients = (QUICK_STEPS, QUICK_MULTS, (None,)) if quick else (STEPS, MULTS, (None,))
     if name == "perm_k":
         comps = [{"name": name}]
+        if not quick:
+            steps, mults = PERM_STEPS, PERM_MULTS
     elif method == "ef21" and not quick:
         comps = [{"name": name, "k": k} for k in range(1, D + 1)]
+    elif method == "pp_marina" and not quick:
+        comps, clients, mults = space.density_options(name, PP_K), PP_CLIENTS, PP_MULTS
     else:
         comps = space.density_options(name, 3 if quick else GRID_K)
-    steps, mults = (QUICK_STEPS, QUICK_MULTS) if quick else (STEPS, MULTS)
     extra = mults if method in SYNCED or method == "diana" else (None,)
-    if name == "perm_k" and not quick:
-        steps = tuple(2.0 ** (j / 2) for j in range(25))  # one density: a finer step axis instead
     out, seen = [], set()
     for comp in comps:
-        for e in extra:
-            for m in steps:
-                kw = {"sync_mult": e} if method in SYNCED else {"shift_mult": e} if method == "diana" else {}
-                c = space.candidate(method, comp, step_mult=m, **kw)
-                if c.key() not in seen:
-                    seen.add(c.key())
-                    out.append(c)
+        for r in clients:
+            for e in extra:
+                for m in steps:
+                    kw = {"sync_mult": e} if method in SYNCED else {"shift_mult": e} if method == "diana" else {}
+                    c = space.candidate(method, comp, step_mult=m, clients=r, **kw)
+                    if c.key() not in seen:
+                        seen.add(c.key())
+                        out.append(c)
     return out
 
 
@@ -85,7 +95,7 @@ def within(x, y, *, margin: float) -> tuple[bool, str]:
 
 
 def compare(folder: Path, method: str, *, trials: int, validation: int, quick: bool) -> bool:
-    name = PAIRS[method]
+    name, t_method = PAIRS[method], time.perf_counter()
     job_path = write_job(folder, f"job-{method}", methods=[method], compressors=[name], trials=trials,
                          validation=validation)
     job = load_job(job_path)
@@ -124,6 +134,8 @@ def compare(folder: Path, method: str, *, trials: int, validation: int, quick: b
                    detail=f"{evals_b} vs {len(points)} / 10 = {len(points) / 10:.1f}"),
              check(f"{method}: (b) no worse than plain Optuna (d)", ok=ok_d, detail=text_d)]
     ok = all(goals)
+    print(f"wall {method}: {time.perf_counter() - t_method:.0f} s (tune {wall_b:.0f} s, grid {wall_c:.0f} s, "
+          f"plain {wall_d:.0f} s); {load_text()}")
     print(f"goal {method}: {'met' if ok else 'MISSED'}", flush=True)
     return ok
 

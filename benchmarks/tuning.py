@@ -149,17 +149,29 @@ def grid_points(space: Space, *, ks, step_mults, sync_mults) -> list[Candidate]:
 
 
 class _BatchCap:
-    """The search's bit cap inside one batch: bits_cap_factor x the best all-seeds-reached mean so far.
+    """The search's bit cap inside one batch, plus exact dominance stopping of the grid's points.
 
-    A batch holds every step of one (K, p). A seed's sync coins do not depend on
-    the step, so all trajectories of one seed have spent the same bits at a given
-    round. The batch stops once every running trajectory is past the cap; a
-    trajectory past the cap before that goes on, but its point then costs more
-    than the cap (at least twice the best point's bits): it cannot be the best.
+    The cap is bits_cap_factor x the best all-seeds-reached mean so far (the search's rule, as a
+    trial is scored). Beyond it, the grid only needs its best point, so a point stops (all its
+    still-running seeds, status ``stopped``) as soon as it cannot become the best:
+
+    * a lower bound on its mean bits, the mean over its seeds of the final bits of those that
+      reached and the bits spent so far by the others (bits never decrease), is already at or
+      above the best mean so far; or
+    * one of its seeds ended without reaching (stalled, diverged, bit cap): its score is then a
+      penalty of at least twice the cap (:func:`bittune.search.score`), above the best.
+
+    Neither rule changes which point is the grid's best (only the scores of points that cannot be
+    it), and the first needs a best, so nothing stops before some point reached on every seed.
+    A batch holds every step of one setting; the engine lays its trajectories out point by point
+    (``np.tile(seeds, points)``).
     """
 
     def __init__(self, points: int, seeds: int, *, target: float, best: float, factor: float):
         self.reached = np.full(points * seeds, np.nan)
+        self.spent = np.zeros(points * seeds)
+        self.running = np.ones(points * seeds, dtype=bool)
+        self.missed = np.zeros(points, dtype=bool)
         self.shape = (points, seeds)
         self.target, self.best, self.factor = target, best, factor
 
@@ -172,11 +184,23 @@ class _BatchCap:
         best = self.best_value()
         return self.factor * best if math.isfinite(best) else None
 
-    def __call__(self, k, index, bits, gn) -> bool:
+    def __call__(self, k, index, bits, gn):
         hit = gn <= self.target
         self.reached[index[hit]] = bits[hit]
-        cap = self.cap()
-        return cap is not None and bits.size > 0 and bool(np.all(bits >= cap))
+        self.spent[index] = bits
+        # Trajectories that left the batch since the last call without reaching: their points missed.
+        left = self.running.copy()
+        left[index] = False
+        gone = left & np.isnan(self.reached)
+        self.missed[np.flatnonzero(gone) // self.shape[1]] = True
+        self.running[:] = False
+        self.running[index] = True
+        best = self.best_value()
+        if not math.isfinite(best) or bits.size == 0:
+            return False
+        lower = np.where(np.isnan(self.reached), self.spent, self.reached).reshape(self.shape).mean(axis=1)
+        hopeless = self.missed | (lower >= best)
+        return hopeless[index // self.shape[1]] & ~hit
 
 
 def grid_batches(points: list[Candidate]) -> list[list[Candidate]]:
