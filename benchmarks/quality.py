@@ -127,6 +127,11 @@ def compare(folder: Path, method: str, *, trials: int, validation: int, quick: b
     print(f"  steps over 1/L = {1 / constants.L:.4g}: (a) x{a.candidate.step_size * constants.L:.3g}, "
           f"(b) x{b.candidate.step_size * constants.L:.3g}, (c) x{c.candidate.step_size * constants.L:.3g}, "
           f"(d) x{d.candidate.step_size * constants.L:.3g}")
+    chosen = sel.chosen or b
+    if chosen is not b:
+        print(f"  (b) back-off: the chosen finalist's step {chosen.candidate.step_size:.4g} "
+              f"({chosen.mean_bits:,.0f} bits) became {b.candidate.step_size:.4g} (ratio "
+              f"{b.mean_bits / chosen.mean_bits:.3f}; search.backoff_tolerance {job.search.backoff_tolerance})")
     ok_c, text_c = within(b, c, margin=1.05)
     ok_d, text_d = within(b, d, margin=1.0)
     goals = [check(f"{method}: (b) within 5% of the grid's best (c)", ok=ok_c, detail=text_c),

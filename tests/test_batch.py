@@ -108,9 +108,10 @@ def test_batched_trials_give_the_values_of_trials_run_one_at_a_time(cancer):
         method = ["marina", "diana", "ef21"][j % 3]
         comp = "top_k" if method == "ef21" else "rand_k"
         p = {"method": method, f"{method}.compressor": comp, f"{comp}.k": int(rng.integers(1, 12)),
-             # EF21 draws its step over its search anchor 1/L (docs/theory.md §2.9): x0.05 .. x2 of it
-             (f"{method}.step_mult" if method != "ef21" else "ef21.anchor_mult"):
-             float(rng.uniform(1, 30)) if method != "ef21" else float(rng.uniform(0.05, 2))}
+             # EF21 and DIANA draw their steps over their search anchors 1/L and 1/(2L) (docs/theory.md
+             # §2.9 and §2.3): x0.05 .. x2 of it
+             (f"{method}.step_mult" if method == "marina" else f"{method}.anchor_mult"):
+             float(rng.uniform(1, 30)) if method == "marina" else float(rng.uniform(0.05, 2))}
         if method == "marina":
             p["marina.sync_mult"] = float(rng.uniform(0.5, 3))
         if method == "diana":

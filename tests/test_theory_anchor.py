@@ -1,10 +1,11 @@
-"""EF21's search anchor (docs/theory.md §2.9, "Search anchor") on a closed-form problem."""
+"""The search anchors of EF21 and DIANA (docs/theory.md §2.9 and §2.3, "Search anchor") on a closed-form
+problem."""
 
 import numpy as np
 import pytest
 
 from bittune.constants import Constants
-from bittune.theory import EF21_ANCHOR_RANGE, theory_point
+from bittune.theory import DIANA_ANCHOR_RANGE, EF21_ANCHOR_RANGE, theory_point
 
 
 def _diag_constants(diag, n=4):
@@ -32,9 +33,27 @@ def test_ef21_anchor_is_one_over_L_whatever_k(k):
     assert EF21_ANCHOR_RANGE[0] * t.search_anchor <= t.step_size <= EF21_ANCHOR_RANGE[1] * t.search_anchor
 
 
+@pytest.mark.parametrize("k", [1, 3, 10])
+def test_diana_anchor_is_its_uncompressed_step_whatever_k(k):
+    c = _diag_constants(np.array([4.0, 2.0, 1.0, 0.5, 0.25, 0.1, 0.1, 0.1, 0.1, 0.1]))
+    t = theory_point("diana", f"rand_k:{k}", c, target=1e-6)
+    # Anchor: 1/(2L), DIANA's step at omega = 0; L = 4 in closed form.
+    assert t.search_anchor == pytest.approx(0.125, rel=1e-12)
+    assert t.search_range == DIANA_ANCHOR_RANGE
+    # Theory step (docs/theory.md §2.3, derived; Mishchenko et al. 2019 for the method): Rand-K has
+    # omega = d/K - 1 (Beznosikov et al. 2020, "On Biased Compression for Distributed Learning",
+    # Table 1, from memory); gamma = min{1/(2L), sqrt(n)/(sqrt(12 omega)(1+omega) L_QM)}, n = 4.
+    omega = 10 / k - 1
+    gamma = 0.125 if omega == 0 else min(0.125, 2.0 / (np.sqrt(12 * omega) * (1 + omega) * 4.0))
+    assert t.step_size == pytest.approx(gamma, rel=1e-12)
+    # At K = d DIANA is uncompressed and the anchor is its theory step.
+    assert (t.step_size == pytest.approx(t.search_anchor)) == (k == 10)
+    assert DIANA_ANCHOR_RANGE[0] * t.search_anchor <= t.step_size <= DIANA_ANCHOR_RANGE[1] * t.search_anchor
+
+
 def test_other_rules_have_no_anchor():
     c = _diag_constants(np.array([4.0, 1.0, 1.0, 1.0]))
-    for method, comp in (("marina", "rand_k:1"), ("diana", "rand_k:1"), ("dcgd", "rand_k:2")):
+    for method, comp in (("marina", "rand_k:1"), ("dcgd", "rand_k:2"), ("pp_marina", "rand_k:1")):
         t = theory_point(method, comp, c, target=1e-6)
         assert t.search_anchor is None and t.search_range is None
 

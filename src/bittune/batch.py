@@ -189,11 +189,12 @@ def run_batch(study: optuna.Study, objective, trials) -> int:
 def run_batches(study: optuna.Study, objective, *, budget: int, size: int, poll: float = 1.0) -> int:
     """:func:`bittune.search.run_trials` with ``size`` trials asked at once; returns how many
     trials this process finished."""
-    from .search import COUNTED, recover_stale_trials
+    from .search import COUNTED, enqueue_refinement, recover_stale_trials
 
     done = 0
     finished_states = (TrialState.COMPLETE, TrialState.PRUNED)
     while len(study.get_trials(deepcopy=False, states=finished_states)) < budget:
+        enqueue_refinement(study, objective.space, budget=budget, seeds=len(objective.seeds))
         free = budget - len(study.get_trials(deepcopy=False, states=COUNTED))
         if free <= 0:
             time.sleep(poll)

@@ -25,7 +25,8 @@ from .methods import dense_bits
 
 __all__ = [
     "TheoryPoint", "RULES", "theory_point", "theory_table", "measured_contraction",
-    "default_compressor_specs", "ef21_search_anchor", "EF21_ANCHOR_RANGE", "gd_rule", "dcgd_rule",
+    "default_compressor_specs", "ef21_search_anchor", "EF21_ANCHOR_RANGE", "diana_search_anchor",
+    "DIANA_ANCHOR_RANGE", "gd_rule", "dcgd_rule",
     "diana_rule", "marina_rule", "ef21_rule",
     "pp_marina_rule", "vr_marina_rule", "ab_step_size", "fits", "pl_point", "PL_METHODS",
 ]
@@ -153,8 +154,23 @@ def diana_rule(compressor: Compressor, constants: Constants, *, target: float) -
         gamma = min(gamma, math.sqrt(c.n_workers) / (math.sqrt(12.0 * omega) * (1.0 + omega) * c.L_qm))
     rounds = _rounds(2.0 * c.delta0 / gamma, target)
     bits = dense_bits(c.dim) + rounds * compressor.nominal_bits
-    return _point("diana", compressor, gamma, rounds, bits,
-                  "derived (docs/theory.md §2.3) for DIANA, Mishchenko et al. 2019", shift=1.0 / (1.0 + omega))
+    point = _point("diana", compressor, gamma, rounds, bits,
+                   "derived (docs/theory.md §2.3) for DIANA, Mishchenko et al. 2019", shift=1.0 / (1.0 + omega))
+    return replace(point, **diana_search_anchor(c))
+
+
+#: DIANA's search range as multipliers of its anchor 1/(2L) (docs/theory.md §2.3, "Search anchor";
+#: common practice, no source): down to 1/512 (the theory step at K = 1 for d up to ~100 with
+#: n = 10 and L_QM ~ L: gamma/anchor ~ 2 sqrt(n)/(sqrt(12) d^1.5)) and up to 32, i.e. 16/L as EF21's
+#: (good DIANA steps measured at 1.3-2/L on benchmarks/quality.py's problem).
+DIANA_ANCHOR_RANGE = (1.0 / 512.0, 32.0)
+
+
+def diana_search_anchor(c: Constants) -> dict:
+    """DIANA's practical search anchor: 1/(2L), its own step at omega = 0 (its uncompressed limit),
+    whatever the density; the theory step shrinks like omega^(-3/2) with d/K while the good steps do
+    not (docs/theory.md §2.3, "Search anchor")."""
+    return {"search_anchor": 1.0 / (2.0 * c.L), "search_range": DIANA_ANCHOR_RANGE}
 
 
 def ab_step_size(*, L_minus: float, L_plus: float, L_pm: float, p: float, A: float, B: float) -> float:
