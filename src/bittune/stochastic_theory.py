@@ -23,7 +23,7 @@ import math
 from dataclasses import replace
 
 from .methods import dense_bits
-from .theory import _point, _rounds, ef21_search_anchor
+from .theory import _point, _rounds, diana_search_anchor, ef21_search_anchor
 
 __all__ = [
     "STOCHASTIC_RULES",
@@ -107,8 +107,9 @@ def diana_sgd_rule(compressor, constants, *, target: float):
         gamma = min(gamma, eps / (2.0 * N))
     phi0 = c.delta0 + 2.0 * c.L * gamma**2 * omega * (1.0 + omega) / n * s2
     rounds = _rounds(4.0 * phi0 / gamma, eps)
-    return _point("diana", compressor, gamma, rounds, dense_bits(c.dim) + rounds * compressor.nominal_bits,
-                  "derived (docs/theory.md §2.12.2) for DIANA, Mishchenko et al. 2019", shift=1.0 / (1.0 + omega))
+    point = _point("diana", compressor, gamma, rounds, dense_bits(c.dim) + rounds * compressor.nominal_bits,
+                   "derived (docs/theory.md §2.12.2) for DIANA, Mishchenko et al. 2019", shift=1.0 / (1.0 + omega))
+    return replace(point, **diana_search_anchor(c))  # as the full-batch rule (docs/theory.md §2.3)
 
 
 def _marina_like(method, compressor, c, *, target, p, variance, per_round, source, clients=None):
