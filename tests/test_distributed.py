@@ -16,6 +16,7 @@ from pathlib import Path
 
 import optuna
 import pytest
+from optuna.storages import RetryFailedTrialCallback
 from optuna.trial import TrialState
 
 from bittune.search import open_storage
@@ -261,3 +262,38 @@ def test_a_scheduler_names_the_study_and_a_worker_joins_it(job, tmp_path):
     summaries = optuna.get_all_study_summaries(open_storage(storage))
     assert [s.study_name for s in summaries] == [name]  # no generated name beside it
     assert out.exists()
+
+
+def test_a_trial_killed_before_its_first_heartbeat_is_failed_and_retried(postgres_url, monkeypatch):
+    # Optuna's stale-trial rule (optuna.storages.fail_stale_trials) skips RUNNING trials that never
+    # recorded a heartbeat, and optimize() asks a trial before its heartbeat thread starts: a process
+    # killed in between left the trial RUNNING for ever (the study's budget then never finished).
+    from bittune.search import recover_stale_trials
+
+    monkeypatch.setenv("BITTUNE_HEARTBEAT", "1,2")
+    store = open_storage(postgres_url)
+    study = optuna.create_study(study_name="beatless", storage=store)
+    study.enqueue_trial({"x": 0.5})
+
+    def ask():  # Optuna warns that heartbeats are meant for optimize(): asking by hand is the point here
+        with pytest.warns(UserWarning, match="Heartbeat"):
+            return study.ask()
+
+    dead = ask()  # RUNNING, no heartbeat: what a kill right after the ask leaves
+    live = ask()
+    store.record_heartbeat(live._trial_id)
+    time.sleep(4.5)  # past twice the grace period (2 s) for the two old trials
+    young = ask()  # beatless too, but asked just now: its process may still be starting it
+    store.record_heartbeat(live._trial_id)  # the live trial keeps beating
+    recover_stale_trials(study)
+    by_id = {t._trial_id: t for t in study.get_trials(deepcopy=False)}
+    assert by_id[dead._trial_id].state == TrialState.FAIL
+    assert by_id[dead._trial_id].user_attrs["failed_reason"] == "its process stopped before its first heartbeat"
+    assert by_id[live._trial_id].state == TrialState.RUNNING
+    assert by_id[young._trial_id].state == TrialState.RUNNING
+    # Retried once through the storage's callback (RetryHeartbeatStaleTrialCallback): a WAITING copy
+    # with the dead trial's params.
+    waiting = [t for t in study.get_trials(deepcopy=False) if t.state == TrialState.WAITING]
+    assert len(waiting) == 1 and waiting[0].system_attrs.get("fixed_params") == {"x": 0.5}
+    with pytest.warns(optuna.exceptions.ExperimentalWarning):
+        assert RetryFailedTrialCallback.retried_trial_number(waiting[0]) == dead.number

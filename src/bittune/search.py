@@ -20,6 +20,7 @@ fewer than ``budget`` trials are finished or running.
 
 from __future__ import annotations
 
+import copy
 import math
 import os
 import time
@@ -781,6 +782,50 @@ def recover_stale_trials(study: optuna.Study) -> None:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
         optuna.storages.fail_stale_trials(study)
+    _fail_beatless_trials(study)
+
+
+def _fail_beatless_trials(study: optuna.Study) -> int:
+    """Fail (and retry through the storage's callback) RUNNING trials of a database study that never
+    recorded a heartbeat and started more than twice the grace period ago; returns how many.
+
+    Optuna's stale-trial test skips trials without a heartbeat, and ``optimize()`` asks a trial
+    (RUNNING from then on) before its heartbeat thread starts: a process killed in that window
+    left a trial RUNNING for ever, and every process then waited for a budget that never finished.
+    A live process records the first heartbeat right after the ask (a batch after asking all of
+    its trials), so twice the grace period cannot catch a live trial on a sane clock."""
+    from datetime import datetime, timedelta
+
+    storage = study._storage
+    backend = getattr(storage, "_backend", storage)  # Optuna wraps RDBStorage in a cache
+    if not isinstance(backend, optuna.storages.RDBStorage) or backend.heartbeat_interval is None:
+        return 0
+    from optuna.storages._rdb import models
+    from optuna.storages._rdb.storage import _create_scoped_session
+
+    grace = backend.grace_period or 2 * backend.heartbeat_interval
+    old = datetime.now() - timedelta(seconds=2 * grace)  # Optuna stamps datetime_start with now()
+    running = [t for t in study.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
+               if t.datetime_start is not None and t.datetime_start < old]
+    if not running:
+        return 0
+    with _create_scoped_session(backend.scoped_session) as session:
+        beating = {tid for (tid,) in session.query(models.TrialHeartbeatModel.trial_id)
+                   .filter(models.TrialHeartbeatModel.trial_id.in_([t._trial_id for t in running])).all()}
+    failed = []
+    for t in running:
+        if t._trial_id in beating:
+            continue
+        try:
+            storage.set_trial_user_attr(t._trial_id, "failed_reason", "its process stopped before its first heartbeat")
+            if storage.set_trial_state_values(t._trial_id, state=TrialState.FAIL):
+                failed.append(t._trial_id)
+        except optuna.exceptions.UpdateFinishedTrialError:
+            pass  # another process failed (or its own process finished) it meanwhile
+    callback = storage.get_heartbeat_stale_trial_callback()
+    for trial_id in failed if callback is not None else []:
+        callback(study, copy.deepcopy(storage.get_trial(trial_id)))
+    return len(failed)
 
 
 def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: float = 1.0) -> int:
