@@ -163,7 +163,7 @@ def diana_rule(compressor: Compressor, constants: Constants, *, target: float) -
 #: common practice, no source): down to 1/512 (the theory step at K = 1 for d up to ~100 with
 #: n = 10 and L_QM ~ L: gamma/anchor ~ 2 sqrt(n)/(sqrt(12) d^1.5)) and up to 32, i.e. 16/L as EF21's
 #: (good DIANA steps measured at 1.3-2/L on benchmarks/quality.py's problem).
-DIANA_ANCHOR_RANGE = (1.0 / 512.0, 32.0)
+DIANA_ANCHOR_RANGE = (1.0 / 32.0, 8.0)
 
 
 def diana_search_anchor(c: Constants) -> dict:
