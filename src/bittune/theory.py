@@ -160,9 +160,10 @@ def diana_rule(compressor: Compressor, constants: Constants, *, target: float) -
 
 
 #: DIANA's search range as multipliers of its anchor 1/(2L) (docs/theory.md §2.3, "Search anchor";
-#: common practice, no source): down to 1/512 (the theory step at K = 1 for d up to ~100 with
-#: n = 10 and L_QM ~ L: gamma/anchor ~ 2 sqrt(n)/(sqrt(12) d^1.5)) and up to 32, i.e. 16/L as EF21's
-#: (good DIANA steps measured at 1.3-2/L on benchmarks/quality.py's problem).
+#: common practice, no source): 1/(64 L) to 4/L. Good DIANA steps were measured at 0.9-2/L for
+#: K = 2..29 on benchmarks/quality.py's problem, and every trial above 2.5-4/L missed the target;
+#: the wider (1/512, 32) spent a third of a 60-trial study at its two ends. A theory step below the
+#: range (small K/d) is clipped to its lower end when enqueued.
 DIANA_ANCHOR_RANGE = (1.0 / 32.0, 8.0)
 
 
