@@ -24,7 +24,6 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import math
 import os
 import sys
 import tempfile
@@ -33,13 +32,18 @@ from pathlib import Path
 
 import numpy as np
 
-from bittune.config import load_config
-from bittune.job import load_job
-from bittune.replay import replay
-from bittune.tune import tune
-from bittune.workspace import open_job
+sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-M, D, N, RANK, NOISE = 4_000, 40, 10, 5, 0.3
+from tuning import make_data  # noqa: E402  (the tuning benchmark's data recipe, at this script's sizes)
+
+from bittune.compressors import spec_text  # noqa: E402
+from bittune.config import load_config
+from bittune.job import load_job  # noqa: E402
+from bittune.replay import replay  # noqa: E402
+from bittune.tune import tune  # noqa: E402
+from bittune.workspace import open_job  # noqa: E402
+
+M, D, N = 4_000, 40, 10
 REGULARIZATION = 1e-3
 TARGET = 1e-3  # relative ||grad f||^2: loose enough that a stochastic run's noise floor lies below it
 SEED = 0
@@ -67,22 +71,6 @@ class Quiet:
 
     def trials(self, *args) -> None:
         pass
-
-
-def label(spec: dict) -> str:
-    """A compressor spec as the job writes it (top_k:3)."""
-    return ":".join([spec["name"], *(str(v) for k, v in spec.items() if k != "name")])
-
-
-def make_data(path: Path, seed: int = SEED) -> None:
-    """Correlated features (low-rank factors + noise), column scales geomspace(0.1, 10); logistic labels."""
-    rng = np.random.default_rng(seed)
-    X = (rng.standard_normal((M, RANK)) @ rng.standard_normal((RANK, D)) + NOISE * rng.standard_normal((M, D)))
-    X *= np.geomspace(0.1, 10.0, D) / math.sqrt(RANK)
-    margin = X @ (rng.standard_normal(D) / np.geomspace(0.1, 10.0, D))
-    margin *= 2.0 / margin.std()
-    y = (rng.random(M) < 1.0 / (1.0 + np.exp(-margin))).astype(np.float64)
-    np.savez(path, X=X, y=y)
 
 
 def write_job(folder: Path, name: str, *, method: str, trials: int, jobs: int, minibatch: int | None = None,
@@ -143,7 +131,8 @@ def main() -> int:
           f"{trials} trials per tune, --jobs {args.jobs}; load average {os.getloadavg()[0]:.1f}")
     with tempfile.TemporaryDirectory(prefix="bittune-realistic-") as tmp:
         folder = Path(tmp)
-        make_data(folder / "data.npz")
+        X, y = make_data(SEED, rows=M, dim=D)
+        np.savez(folder / "data.npz", X=X, y=y)
         for method in methods:
             comp = PAIRS[method]
             print(f"\n== {method} + {comp}")
@@ -161,7 +150,7 @@ def main() -> int:
                     continue
                 name = "full batch" if b is None else f"minibatch {b}"
                 ratio = f"{cfg['step_size'] / full['step_size']:.3g}x" if full else "-"
-                print(f"  {name:12s} {label(cfg['compressor'])} step {cfg['step_size']:.4g}  {ratio:>7s}  "
+                print(f"  {name:12s} {spec_text(cfg['compressor'])} step {cfg['step_size']:.4g}  {ratio:>7s}  "
                       f"transfer {cfg['expected'].get('transfer_ratio', float('nan')):.3g}x")
             print("replayed (mean uplink bits/worker over the seeds that reached, reached/seeds):")
             print(f"  {'config tuned on':16s}" + "".join(
@@ -184,7 +173,7 @@ def main() -> int:
                 print(f"front on {net_name} ({len(pts)} points; * chosen, prefer balanced; transfer "
                       f"{cfg['expected'].get('transfer_ratio', float('nan')):.3g}x):")
                 for p in pts:
-                    print(f"  {'*' if p['chosen'] else ' '} {label(p['compressor'])} step {p['step_size']:.4g}: "
+                    print(f"  {'*' if p['chosen'] else ' '} {spec_text(p['compressor'])} step {p['step_size']:.4g}: "
                           f"{p['mean_bits_per_worker']:>9,.0f} bits  {p['mean_seconds']:.4g} s")
     print(f"\nwall {time.perf_counter() - t0:.0f} s; load average {os.getloadavg()[0]:.1f}")
     return 1 if failed else 0

@@ -75,18 +75,19 @@ RAW_SYNC = (0.01, 1.0)
 
 
 # ------------------------------------------------------------------------ problem
-def make_data(seed: int = SEED) -> tuple[np.ndarray, np.ndarray]:
-    """Correlated features (low-rank factors + noise), scales geomspace(0.1, 10); logistic labels."""
+def make_data(seed: int = SEED, *, rows: int = M, dim: int = D) -> tuple[np.ndarray, np.ndarray]:
+    """Correlated features (low-rank factors + noise), scales geomspace(0.1, 10); logistic labels.
+    ``rows`` x ``dim`` (this benchmark's 8,000 x 60 by default; benchmarks/realistic.py uses others)."""
     rng = np.random.default_rng(seed)
-    factors = rng.standard_normal((M, RANK))
-    loadings = rng.standard_normal((RANK, D))
-    X = (factors @ loadings + NOISE * rng.standard_normal((M, D))) / math.sqrt(RANK)
-    scales = np.geomspace(0.1, 10.0, D)
+    factors = rng.standard_normal((rows, RANK))
+    loadings = rng.standard_normal((RANK, dim))
+    X = (factors @ loadings + NOISE * rng.standard_normal((rows, dim))) / math.sqrt(RANK)
+    scales = np.geomspace(0.1, 10.0, dim)
     X *= scales
-    hidden = rng.standard_normal(D) / scales  # every feature matters, whatever its scale
+    hidden = rng.standard_normal(dim) / scales  # every feature matters, whatever its scale
     margin = X @ hidden
     margin *= 2.0 / margin.std()
-    y = (rng.random(M) < 1.0 / (1.0 + np.exp(-margin))).astype(np.float64)
+    y = (rng.random(rows) < 1.0 / (1.0 + np.exp(-margin))).astype(np.float64)
     return X, y
 
 

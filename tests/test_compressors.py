@@ -18,7 +18,7 @@ import pytest
 from scipy.stats import norm
 
 from bittune._random import trajectory_keys
-from bittune.compressors import COMPRESSORS, Compressor, make_compressor, parse_spec
+from bittune.compressors import COMPRESSORS, Compressor, make_compressor, parse_spec, spec_text
 from bittune.errors import InputError
 
 D, N, B = 40, 3, 2  # dimension, workers, trajectories of the small conformance blocks
@@ -702,3 +702,11 @@ def test_errors_use_the_given_key_and_are_collected():
         parse_spec("rand_k:0", key="job.uplink")
     with pytest.raises(ValueError, match="dim"):
         make_compressor("natural", 0)
+
+
+@pytest.mark.parametrize("text", ["top_k:3", "rand_k:1", "dither:5", "natural", "perm_k"])
+def test_spec_text_writes_what_the_job_syntax_reads(text):
+    # The job file's compressor syntax "name:k" (README, "Job file"): written back unchanged.
+    spec = parse_spec(text)
+    assert spec_text(spec) == text
+    assert parse_spec(spec_text(spec)) == spec

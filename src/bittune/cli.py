@@ -220,6 +220,7 @@ def _cmd_theory(args: argparse.Namespace) -> int:
 
 
 def _cmd_tune(args: argparse.Namespace) -> int:
+    from .compressors import spec_text
     from .tune import tune
 
     if args.workers_only and not args.storage:
@@ -241,7 +242,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         base = exp["theory_baseline"]
         # The gains are in the objective's cost: simulated seconds for seconds and front (docs/design.md, "The front").
         unit = " in simulated seconds" if cfg.get("gains", {}).get("objective", "bits") != "bits" else ""
-        print(f"chosen: {cfg['method']} + {_label(cfg['compressor'])}, step {cfg['step_size']:.4g}"
+        print(f"chosen: {cfg['method']} + {spec_text(cfg['compressor'])}, step {cfg['step_size']:.4g}"
               + (f", sync probability {cfg['sync_probability']:.3g}" if cfg.get("sync_probability") else "")
               + (f", shift rate {cfg['shift_rate']:.3g}" if cfg.get("shift_rate") else ""))
         print(f"expected on {len(exp['validation_seeds'])} fresh seeds: {exp['mean_bits_per_worker']:,.0f} uplink "
@@ -268,7 +269,7 @@ def _cmd_tune(args: argparse.Namespace) -> int:
         if cfg.get("front"):
             pts = cfg["front"]["points"]
             print(f"front ({len(pts)} points, prefer: {cfg['front']['prefer']}): " + "; ".join(
-                f"{'*' if p['chosen'] else ''}{p['method']} + {_label(p['compressor'])} step {p['step_size']:.3g}: "
+                f"{'*' if p['chosen'] else ''}{p['method']} + {spec_text(p['compressor'])} step {p['step_size']:.3g}: "
                 f"{p['mean_bits_per_worker']:,.0f} bits "
                 f"{p['mean_seconds']:.4g} s" for p in pts))
         print(f"config: {args.output}")
@@ -354,10 +355,6 @@ def _cmd_history(args: argparse.Namespace) -> int:
         print(f"{r['night']:<21} {r['decision']:<9} {r['method']:<7} {r['compressor']:<11} {r['step_size']:>10.4g} "
               f"{'' if bits is None else f'{bits:,.0f}':>12}")
     return EXIT["ok"]
-
-
-def _label(spec: dict) -> str:
-    return ":".join([spec["name"], *(str(v) for k, v in spec.items() if k != "name")])
 
 
 def _params(spec: dict) -> str:

@@ -36,7 +36,7 @@ from bittune.errors import InputError
 
 __all__ = [
     "Compressor", "Identity", "RandK", "TopK", "Dither", "Natural", "NaturalDither", "PermK",
-    "COMPRESSORS", "parse_spec", "make_compressor", "PerTrajectory", "elias_omega_bits",
+    "COMPRESSORS", "parse_spec", "spec_text", "make_compressor", "PerTrajectory", "elias_omega_bits",
 ]
 
 _FLOAT_BITS = 32  # one float32 value
@@ -557,6 +557,11 @@ def parse_spec(text_or_mapping: str | Mapping[str, Any], *, key: str = "compress
     The upper bound k <= d is checked by :func:`make_compressor`.
     """
     return _parse(text_or_mapping, key, None)
+
+
+def spec_text(spec: Mapping[str, Any]) -> str:
+    """A compressor spec as a job writes it, the inverse of :func:`parse_spec` on text: ``top_k:3``."""
+    return ":".join([spec["name"], *(str(v) for k, v in spec.items() if k != "name")])
 
 
 def make_compressor(
