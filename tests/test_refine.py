@@ -69,3 +69,26 @@ def test_no_refinement_without_a_reached_trial_or_for_a_front():
     assert enqueue_refinement(study, space, budget=60, seeds=2) == 0  # no trial reached on both seeds
     front = optuna.create_study(directions=["minimize", "minimize"])
     assert enqueue_refinement(front, space, budget=0, seeds=2) == 0
+
+
+def test_second_stage_splits_the_gap_up_to_the_nearest_failed_larger_step():
+    # Our own rule (no source): once a larger step of the best trial's setting failed, the second stage
+    # bisects that bracket in log scale (3 points: a quarter, a half, three quarters of the gap).
+    space = _space("marina")
+    study = optuna.create_study(sampler=optuna.samplers.TPESampler(seed=1))
+    study.optimize(_value(space, 40.0), n_trials=55)
+    study.set_user_attr("refined_54", True)  # the first stage ran
+    best = study.best_trial
+    name, _, _ = space.step_param("marina", space.from_params(best.params).compressor)
+    step = best.params[name]
+
+    def add(factor, **kw):
+        study.add_trial(optuna.trial.create_trial(params=dict(best.params, **{name: step * factor}),
+                                                  distributions=best.distributions, **kw))
+
+    add(2 ** 0.25, state=TrialState.PRUNED, user_attrs={"reached": 0})
+    add(2 ** 0.5, value=1e9, user_attrs={"reached": 1})  # missed a seed, but further away
+    assert len(study.trials) == 57
+    assert enqueue_refinement(study, space, budget=60, seeds=2) == 3
+    fixed = [t.system_attrs["fixed_params"][name] for t in study.get_trials(states=(TrialState.WAITING,))]
+    assert fixed == pytest.approx([step * 2 ** (0.25 * j / 4) for j in (1, 2, 3)], rel=1e-12)

@@ -759,12 +759,29 @@ def enqueue_refinement(study: optuna.Study, space: Space, *, budget: int, seeds:
         best = min(done, key=lambda t: t.value)
         cand = space.from_params(best.params)
         name, lo, hi = space.step_param(cand.method, cand.compressor)
+        if start != refine_plan(budget)[0][0]:
+            factors = _bracket_factors(study, best, name, seeds=seeds, points=len(factors)) or factors
         for f in factors:
             params = dict(best.params, **{name: _clip(best.params[name] * f, (lo, hi))})
             before = len(study.get_trials(deepcopy=False))
             study.enqueue_trial(params, user_attrs={"refine_point": True}, skip_if_exists=True)
             added += len(study.get_trials(deepcopy=False)) - before
     return added
+
+
+def _bracket_factors(study: optuna.Study, best, name: str, *, seeds: int, points: int) -> tuple[float, ...]:
+    """Step factors that split the gap between ``best``'s step and the smallest larger step of the same
+    setting that failed (pruned, or missed the target on a seed) into ``points + 1`` equal parts in
+    log scale; () when no such failure is known (docs/design.md, "Step refinement")."""
+    others = {k: v for k, v in best.params.items() if k != name}
+    step = best.params[name]
+    failed = [t.params[name] for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE, TrialState.PRUNED))
+              if t.params.get(name, 0.0) > step and {k: v for k, v in t.params.items() if k != name} == others
+              and (t.state == TrialState.PRUNED or t.user_attrs.get("reached") != seeds)]
+    if not failed:
+        return ()
+    gap = min(failed) / step
+    return tuple(gap ** (j / (points + 1)) for j in range(1, points + 1))
 
 
 class _OverBudget(Exception):
