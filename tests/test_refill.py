@@ -130,3 +130,47 @@ def test_a_trajectory_that_joins_a_running_batch_equals_its_run_alone(cancer, ca
             if kw.get("network") is not None:
                 np.testing.assert_allclose(b.seconds_curve, a.seconds_curve, rtol=RTOL)
                 np.testing.assert_allclose(b.worker_shares, a.worker_shares, rtol=RTOL, atol=1e-14)
+
+
+def test_the_refilling_runner_keeps_its_batch_full_and_finishes_exactly_the_budget(cancer, monkeypatch):
+    """search.trial_batch 3 on two groups (MARINA, DIANA): trials join running batches as others
+    finish (told at once, before their slot is refilled), other-group trials wait for a later batch,
+    and exactly the budget of trials finishes, none left running or failed."""
+    import optuna
+    from optuna.trial import TrialState
+
+    import bittune.batch as batch
+    from bittune.job import SECTIONS, SearchSpec
+    from bittune.search import run_trials
+    from test_batch import _objective
+
+    defaults = {k: p.default for k, p in SECTIONS["search"].items()}
+    spec = SearchSpec(**{**defaults, "methods": ["marina", "diana"], "compressors": ["rand_k"], "seeds": 2,
+                         "trial_batch": 3})
+    obj = _objective(cancer, spec, seeds=[5, 6])
+    study = optuna.create_study(sampler=optuna.samplers.TPESampler(seed=0), pruner=optuna.pruners.NopPruner())
+    real = batch.simulate
+    calls, told_at_join = [], []
+
+    def counting(problem, **kw):
+        inner = kw["refill"]
+
+        def refill(ended):
+            join = inner(ended)
+            if join is not None:
+                told_at_join.append(len(study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))))
+            return join
+
+        runs = real(problem, **{**kw, "refill": refill})
+        calls.append((kw["method"], len(runs) // 2))
+        return runs
+
+    monkeypatch.setattr(batch, "simulate", counting)
+    budget = 11
+    assert run_trials(study, obj, budget=budget) == budget
+    states = [t.state for t in study.get_trials(deepcopy=False)]
+    assert states.count(TrialState.COMPLETE) + states.count(TrialState.PRUNED) == budget
+    assert TrialState.RUNNING not in states and TrialState.FAIL not in states
+    assert sum(n for _, n in calls) == budget  # every trial ran in exactly one engine batch
+    assert max(n for _, n in calls) > 3  # trials joined a running batch (more than trial_batch in one)
+    assert told_at_join and all(a >= 1 for a in told_at_join) and told_at_join == sorted(told_at_join)

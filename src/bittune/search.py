@@ -743,9 +743,9 @@ def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: 
     """
     size = int(getattr(objective.space.spec, "trial_batch", 1))
     if size > 1:
-        from .batch import run_batches
+        from .batch import run_refilling
 
-        return run_batches(study, objective, budget=budget, size=size, poll=poll)
+        return run_refilling(study, objective, budget=budget, size=size, poll=poll)
     done = 0
     finished_states = (TrialState.COMPLETE, TrialState.PRUNED)
 
