@@ -174,3 +174,22 @@ def test_the_refilling_runner_keeps_its_batch_full_and_finishes_exactly_the_budg
     assert sum(n for _, n in calls) == budget  # every trial ran in exactly one engine batch
     assert max(n for _, n in calls) > 3  # trials joined a running batch (more than trial_batch in one)
     assert told_at_join and all(a >= 1 for a in told_at_join) and told_at_join == sorted(told_at_join)
+
+
+def test_trajectories_join_a_batch_whose_rows_have_all_ended(cancer):
+    """The only row stops at round 5; the joiners start in an empty batch (a method instance with no
+    rows takes their state as it is) and still equal their run alone (reference: that run)."""
+    d = cancer.dim
+    _, L = cancer.smoothness_bounds()
+    target = absolute_target(cancer, np.zeros(d), grad_norm_sq=1e-3, relative=True)
+    comp = make_compressor("rand_k:4", d)
+    kw = dict(method="marina", compressor=comp, target=target, max_rounds=400, params={"sync_probability": 0.3})
+    alone = simulate(cancer, step_size=1.5 / L, seeds=[8, 9], **kw)
+    pending = [Join(seeds=[8, 9], step_size=1.5 / L, compressor=comp, params={"sync_probability": 0.3})]
+    runs = simulate(cancer, step_size=0.1 / L, seeds=[1], monitor=lambda k, i, c, m: (i == 0) & (np.asarray(k) >= 5),
+                    refill=lambda done: pending.pop() if pending else None, **kw)
+    assert [(r.status, r.rounds) for r in runs[:1]] == [("stopped", 5)]
+    for a, b in zip(alone, runs[1:]):
+        assert (b.seed, b.status, b.rounds) == (a.seed, a.status, a.rounds)
+        assert b.uplink_bits == pytest.approx(a.uplink_bits, rel=RTOL)
+        np.testing.assert_allclose(b.grad_norm_sq, a.grad_norm_sq, rtol=RTOL)
