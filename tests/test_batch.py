@@ -218,7 +218,9 @@ def _complete(run_dir: Path) -> dict[int, float]:
 @pytest.mark.slow
 def test_a_kill_during_a_batch_loses_no_finished_trial(tmp_path):
     """SIGKILL once trials have finished (observed in the storage, not after a sleep), then rerun:
-    the finished trials survive unchanged, the killed batch's trials are failed and re-asked."""
+    the finished trials survive unchanged, the killed batch's trials are failed and re-asked. A
+    refilling batch tells each trial as it finishes, so the kill lands inside the first engine batch
+    (4 trials running, 2 told) and still loses none of them."""
     subprocess.run([sys.executable, str(ROOT / "examples/frost/make_data.py"), "--out", str(tmp_path / "st.svm"),
                     "--nights", "60"], check=True, capture_output=True)
     job = tmp_path / "job.yaml"
@@ -238,11 +240,11 @@ search: {methods: [marina, diana], compressors: [rand_k], trials: 24, seeds: 2, 
     deadline = time.monotonic() + 300  # generous: a loaded 2-core machine
     while time.monotonic() < deadline and proc.poll() is None:
         before = _complete(tmp_path / "c.run")
-        if len(before) >= 5:  # past the first batch of 4: a later batch is running now
+        if len(before) >= 2:  # told inside a running batch (its slots refilled since)
             break
         time.sleep(0.1)
-    assert proc.poll() is None, "the run finished before 5 trials were seen in its storage"
-    assert len(before) >= 5, f"only {len(before)} finished trials within the deadline"
+    assert proc.poll() is None, "the run finished before 2 trials were seen in its storage"
+    assert len(before) >= 2, f"only {len(before)} finished trials within the deadline"
     proc.send_signal(signal.SIGKILL)
     proc.wait()
     rerun = subprocess.run(cmd, capture_output=True, text=True)

@@ -56,20 +56,32 @@ def trajectory_keys(seeds) -> np.ndarray:
     return keys
 
 
-def random_bits(keys: np.ndarray, round_: int, stream: int, shape: tuple[int, ...]) -> np.ndarray:
+def _counter(keys: np.ndarray, round_, stream: int) -> np.ndarray:
+    """The (stream, round) counter word: shape (1,) for a scalar round, (B,) for one round per key."""
+    high = (int(stream) & 0xFFFFFF) << 40
+    r = np.asarray(round_)
+    if r.ndim == 0:
+        return np.full(1, np.uint64(high ^ (int(round_) & 0xFFFFFFFFFF)), dtype=np.uint64)
+    if r.shape != keys.shape or not np.issubdtype(r.dtype, np.integer):
+        raise ValueError(f"round_: a scalar or one integer per key {keys.shape}, got {r.dtype} {r.shape}")
+    return (r.astype(np.int64) & 0xFFFFFFFFFF).astype(np.uint64) ^ np.uint64(high)
+
+
+def random_bits(keys: np.ndarray, round_, stream: int, shape: tuple[int, ...]) -> np.ndarray:
     """Random uint64 words, shape ``(len(keys), *shape)``.
 
     For each (key, round, stream) a well-mixed 64-bit state ``head`` is made;
     element i is then output i of the SplitMix64 generator seeded with
     ``head``: ``mix(head + (i + 1) * golden)``. Element (b, *idx) depends only
     on ``keys[b]``, ``round_``, ``stream`` and the flat index of ``idx``, so a
-    trajectory sees the same numbers whatever batch it is in.
+    trajectory sees the same numbers whatever batch it is in. ``round_`` is one
+    round for every key, or a (B,) integer array of one round per key (a refilling
+    batch, where rows that joined later are at earlier rounds; docs/design.md, "The engine").
     """
     keys = np.asarray(keys, dtype=np.uint64)
     size = int(np.prod(shape, dtype=np.int64))
     with np.errstate(over="ignore"):
-        counter = np.uint64(((int(stream) & 0xFFFFFF) << 40) ^ (int(round_) & 0xFFFFFFFFFF))
-        head = _mix(_mix(keys ^ _mix(np.full(1, counter, dtype=np.uint64))) + _GOLDEN)
+        head = _mix(_mix(keys ^ _mix(_counter(keys, round_, stream))) + _GOLDEN)
         steps = np.arange(1, size + 1, dtype=np.uint64)
         steps *= _GOLDEN
         x = head[:, None] + steps[None, :]
@@ -77,7 +89,7 @@ def random_bits(keys: np.ndarray, round_: int, stream: int, shape: tuple[int, ..
     return x.reshape((keys.shape[0],) + tuple(shape))
 
 
-def random_words32(keys: np.ndarray, round_: int, stream: int, shape: tuple[int, ...]) -> np.ndarray:
+def random_words32(keys: np.ndarray, round_, stream: int, shape: tuple[int, ...]) -> np.ndarray:
     """Random uint32 words, shape ``(len(keys), *shape)``: both halves of each
     64-bit output of :func:`random_bits` (half the hashing work)."""
     size = int(np.prod(shape, dtype=np.int64))
@@ -86,7 +98,7 @@ def random_words32(keys: np.ndarray, round_: int, stream: int, shape: tuple[int,
     return words.reshape((x.shape[0],) + tuple(shape))
 
 
-def uniform(keys: np.ndarray, round_: int, stream: int, shape: tuple[int, ...]) -> np.ndarray:
+def uniform(keys: np.ndarray, round_, stream: int, shape: tuple[int, ...]) -> np.ndarray:
     """Uniform floats in [0, 1) (53 random bits each), shape ``(len(keys), *shape)``."""
     x = random_bits(keys, round_, stream, shape)
     x >>= np.uint64(11)

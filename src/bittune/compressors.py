@@ -36,7 +36,8 @@ from bittune.errors import InputError
 
 __all__ = [
     "Compressor", "Identity", "RandK", "TopK", "Dither", "Natural", "NaturalDither", "PermK",
-    "COMPRESSORS", "parse_spec", "spec_text", "make_compressor", "PerTrajectory", "elias_omega_bits",
+    "COMPRESSORS", "parse_spec", "spec_text", "make_compressor", "PerTrajectory", "stack_compressors",
+    "elias_omega_bits",
 ]
 
 _FLOAT_BITS = 32  # one float32 value
@@ -67,6 +68,16 @@ def elias_omega_bits(k) -> np.ndarray:
         n = np.where(big, width - 1, 1)
 
 
+def _as_round(round_, rows: int):
+    """A round for the random streams: an int, or a (rows,) int64 array of one round per trajectory."""
+    if np.ndim(round_) == 0:
+        return int(round_)
+    r = np.asarray(round_, dtype=np.int64)
+    if r.shape != (rows,):
+        raise ValueError(f"round_: a scalar or one round per trajectory ({rows}), got shape {r.shape}")
+    return r
+
+
 class Compressor(ABC):
     """Base class. Build instances with :func:`make_compressor` (it validates)."""
 
@@ -91,9 +102,10 @@ class Compressor(ABC):
         self.alpha = 1.0 / (1.0 + self.omega)  # Q/(1+omega) is in B(1/(1+omega)), docs/theory.md §1.1
 
     def compress(
-        self, v: np.ndarray, keys: np.ndarray, round_: int
+        self, v: np.ndarray, keys: np.ndarray, round_
     ) -> tuple[np.ndarray, np.ndarray]:
-        """Compress every message of a ``(B, n, d)`` block.
+        """Compress every message of a ``(B, n, d)`` block at round ``round_`` (one round, or a
+        (B,) array of one round per trajectory: a refilling batch, docs/design.md "The engine").
 
         Returns the compressed block (same shape, ``v`` untouched; float32 for a
         float32 block, else float64) and the exact bits of each message, float64
@@ -107,19 +119,19 @@ class Compressor(ABC):
                 f"{self.label()}: expected v of shape (B, n, {self.dim}) and keys of shape (B,),"
                 f" got {v.shape} and {keys.shape}"
             )
-        out, bits = self._apply(v, keys, int(round_))
+        out, bits = self._apply(v, keys, _as_round(round_, keys.shape[0]))
         return out.astype(v.dtype, copy=False), bits
 
     @abstractmethod
     def _apply(
-        self, v: np.ndarray, keys: np.ndarray, round_: int
+        self, v: np.ndarray, keys: np.ndarray, round_
     ) -> tuple[np.ndarray, np.ndarray]: ...
 
     def _fixed_bits(self, v: np.ndarray) -> np.ndarray:
         return np.full(v.shape[:2], float(self.nominal_bits), dtype=np.float64)
 
     @staticmethod
-    def _draw(keys: np.ndarray, round_: int, v: np.ndarray) -> np.ndarray:
+    def _draw(keys: np.ndarray, round_, v: np.ndarray) -> np.ndarray:
         """Uniforms of shape (B, n, d): worker i of trajectory b gets its own numbers."""
         return uniform(keys, round_, STREAM["compress"], v.shape[1:])
 
@@ -437,7 +449,8 @@ class PerTrajectory:
     settings, never over workers or trajectories), so every trajectory gets exactly
     the values and bits it gets when its compressor runs alone. ``omega``, ``alpha``
     and ``density`` are (B,) arrays over the trajectories still in the batch;
-    :meth:`keep` drops finished ones, as the methods' state does.
+    :meth:`keep` drops finished ones, as the methods' state does, and :meth:`append` adds the
+    rows of trajectories that join a running batch (:func:`stack_compressors`).
     """
 
     def __init__(self, parts, assign) -> None:
@@ -447,7 +460,7 @@ class PerTrajectory:
             raise ValueError(f"PerTrajectory needs compressors of one class, got {[c.label() for c in parts]}")
         self.parts = parts
         self.assign = np.asarray(assign, dtype=np.int64).copy()
-        if self.assign.ndim != 1 or self.assign.min() < 0 or self.assign.max() >= len(parts):
+        if self.assign.ndim != 1 or (self.assign.size and (self.assign.min() < 0 or self.assign.max() >= len(parts))):
             raise ValueError(f"assign must index the {len(parts)} parts, got {assign!r}")
         first = parts[0]
         self.name, self.dim = first.name, first.dim
@@ -464,7 +477,21 @@ class PerTrajectory:
         """Keep rows ``index`` of the batch (the engine drops finished trajectories)."""
         self.assign = self.assign[index]
 
-    def compress(self, v: np.ndarray, keys: np.ndarray, round_: int) -> tuple[np.ndarray, np.ndarray]:
+    def append(self, other: "PerTrajectory") -> None:
+        """Add the rows of ``other`` after this batch's rows (trajectories joining a running batch);
+        parts with the same label are shared."""
+        labels = [c.label() for c in self.parts]
+        where = []
+        for c in other.parts:
+            if c.label() not in labels:
+                if (type(c), c.unbiased, c.correlated) != (type(self.parts[0]), self.unbiased, self.correlated):
+                    raise ValueError(f"PerTrajectory: cannot add {c.label()} to {self.label()} (another class)")
+                self.parts.append(c)
+                labels.append(c.label())
+            where.append(labels.index(c.label()))
+        self.assign = np.concatenate([self.assign, np.asarray(where, dtype=np.int64)[other.assign]])
+
+    def compress(self, v: np.ndarray, keys: np.ndarray, round_) -> tuple[np.ndarray, np.ndarray]:
         if v.shape[0] != self.assign.shape[0]:
             raise ValueError(f"PerTrajectory: a block of {v.shape[0]} trajectories, {self.assign.shape[0]} assigned")
         used = np.unique(self.assign)
@@ -472,9 +499,11 @@ class PerTrajectory:
             return self.parts[int(used[0])].compress(v, keys, round_)
         out = None
         bits = np.empty(v.shape[:2], dtype=np.float64)
+        per_row = np.ndim(round_) > 0
         for g in used:
             rows = np.flatnonzero(self.assign == g)
-            part, bits[rows] = self.parts[int(g)].compress(v[rows], keys[rows], round_)
+            part, bits[rows] = self.parts[int(g)].compress(v[rows], keys[rows],
+                                                          np.asarray(round_)[rows] if per_row else round_)
             if out is None:  # the parts' dtype (float32 blocks stay float32)
                 out = np.empty(v.shape, dtype=part.dtype)
             out[rows] = part
@@ -482,6 +511,23 @@ class PerTrajectory:
 
     def label(self) -> str:
         return "+".join(c.label() for c in self.parts)
+
+
+def stack_compressors(first, rows_first: int, second, rows_second: int):
+    """The compressor of a batch made of ``rows_first`` trajectories compressed by ``first`` followed
+    by ``rows_second`` compressed by ``second`` (a :class:`Compressor` or a :class:`PerTrajectory`):
+    one of them when the other has no rows or both are the same setting, else a PerTrajectory."""
+    if rows_second == 0:
+        return first
+    if rows_first == 0:
+        return second
+    if not isinstance(first, PerTrajectory) and not isinstance(second, PerTrajectory) \
+            and first.label() == second.label():
+        return first
+    out = first if isinstance(first, PerTrajectory) else PerTrajectory([first], np.zeros(rows_first, np.int64))
+    out.append(second if isinstance(second, PerTrajectory) else PerTrajectory([second], np.zeros(rows_second,
+                                                                                                   np.int64)))
+    return out
 
 
 COMPRESSORS: dict[str, type[Compressor]] = {

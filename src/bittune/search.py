@@ -848,8 +848,8 @@ def _fail_beatless_trials(study: optuna.Study) -> int:
 def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: float = 1.0) -> int:
     """Run trials in this process until ``budget`` trials are finished (complete or pruned).
 
-    With ``search.trial_batch`` above 1, trials are asked that many at a time and share
-    engine batches (:mod:`bittune.batch`). Otherwise each trial runs through
+    With ``search.trial_batch`` above 1 (the default is 8), up to that many trials share one
+    refilling engine batch (:mod:`bittune.batch`). Otherwise each trial runs through
     ``study.optimize(n_trials=1)``, so database heartbeats work. While the rest of the budget is running in other
     processes, this one waits and recovers trials whose heartbeat stopped (a
     crashed machine), so their retries still run. A trial whose number shows
@@ -859,9 +859,9 @@ def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: 
     """
     size = int(getattr(objective.space.spec, "trial_batch", 1))
     if size > 1:
-        from .batch import run_batches
+        from .batch import run_refilling
 
-        return run_batches(study, objective, budget=budget, size=size, poll=poll)
+        return run_refilling(study, objective, budget=budget, size=size, poll=poll)
     done = 0
     finished_states = (TrialState.COMPLETE, TrialState.PRUNED)
 

@@ -15,10 +15,11 @@ import numpy as np
 
 from ._random import trajectory_keys
 from .methods import dense_bits, make_method
+from .methods.base import stack_rows
 from .methods._minibatch import minibatch_weights
 from .problems.base import PRECISIONS
 
-__all__ = ["Trajectory", "STATUS", "simulate", "absolute_target", "PRECISIONS"]
+__all__ = ["Trajectory", "STATUS", "Join", "simulate", "absolute_target", "PRECISIONS"]
 
 #: Status of a finished trajectory, with the message shown to users.
 STATUS = {
@@ -77,6 +78,19 @@ class Trajectory:
         return STATUS[self.status]
 
 
+@dataclass
+class Join:
+    """Trajectories that join a running batch: what :func:`simulate`'s ``refill`` returns. Each field
+    is per trajectory (or one value for all of them), as simulate's arguments of the same name;
+    ``compressor`` is one compressor or a :class:`~bittune.compressors.PerTrajectory` over them."""
+
+    seeds: object
+    step_size: object
+    compressor: object
+    params: dict | None = None
+    stall_window: object = None
+
+
 def absolute_target(problem, x0: np.ndarray, *, grad_norm_sq: float, relative: bool) -> float:
     """The target on ||grad f||^2 in absolute units."""
     if not relative:
@@ -106,6 +120,7 @@ def simulate(
     network=None,
     downlink=None,
     minibatch: int | None = None,
+    refill=None,
 ) -> list[Trajectory]:
     """Simulate ``len(seeds)`` trajectories of ``method`` at once.
 
@@ -148,6 +163,15 @@ def simulate(
     VR-MARINA's b' fixed to b); gradient evaluations count b per worker per estimate
     (docs/theory.md §2.12, docs/design.md "Stochastic gradients"). The stopping metric stays the
     full ||grad f(x^k)||^2.
+
+    ``refill(ended)`` (None: off) keeps a batch full (docs/design.md, "The engine"): it is called
+    in every round where trajectories ended, with ``ended`` the list of (index, Trajectory) of
+    those (index: its row in join order, the first ``len(seeds)`` being the starting ones), and
+    returns a :class:`Join` of new trajectories or None. Their x^0 joins the round's one oracle
+    call; each trajectory then runs on its own round counter (its random numbers, round budget,
+    stall window, ``monitor``'s k: an array of the rows' own rounds) and gets the values it gets
+    alone from round 0, up to float rounding in the batched products. The result lists every
+    trajectory in join order. A ``monitor`` that stops the whole batch stops joiners too.
     """
     seeds = np.atleast_1d(np.asarray(seeds, dtype=np.int64))
     B, d, n = seeds.shape[0], problem.dim, problem.n_workers
@@ -159,10 +183,15 @@ def simulate(
                              f"{precision} oracle")
         problem = problem.in_precision(precision)
     dtype = PRECISIONS[precision]
-    keys_all = trajectory_keys(seeds)
-    step_all = np.broadcast_to(np.asarray(step_size, dtype=dtype), (B,)).copy()
-    meth = make_method(method, compressor=compressor, n_workers=n, dim=d, batch=B, **(params or {}),
-                       **({} if downlink is None else {"downlink": downlink}))
+
+    def build(comp, rows: int, prm):
+        m = make_method(method, compressor=comp, n_workers=n, dim=d, batch=rows, **(prm or {}),
+                        **({} if downlink is None else {"downlink": downlink}))
+        if minibatch is not None:
+            m.use_minibatch(int(minibatch))
+        m.bind(problem)
+        return m
+
     if minibatch is not None:
         if not getattr(problem, "has_samples", False):
             raise ValueError(f"minibatch: the model {getattr(problem, 'name', '?')!r} has no per-sample gradients")
@@ -171,158 +200,236 @@ def simulate(
         if minibatch > int(np.min(problem.worker_sizes)):
             raise ValueError(f"minibatch {minibatch} is larger than the smallest worker's "
                              f"{int(np.min(problem.worker_sizes))} rows")
-        meth.use_minibatch(int(minibatch))
-    meth.bind(problem)
+    meth = build(compressor, B, params)
+    fresh, n_fresh = None, 0  # the method instance of rows that joined this round (their round 0 is next)
     sampled = minibatch is not None and not meth.own_rows  # the engine draws the rows
     x0 = np.zeros(d) if x0 is None else np.asarray(x0, dtype=np.float64)
-    X = np.broadcast_to(x0.astype(dtype), (B, d)).copy()
-
-    grads, loss0 = problem.local_grads(X, with_loss=True)
-    gn = _norm_sq(grads)
     track_loss = loss_ref is not None
-    f_hist = [loss0.mean(axis=1, dtype=np.float64)] if track_loss else None  # f(x^k) every round (loss-gap target)
-    metric = f_hist[0] - loss_ref if track_loss else gn  # what the target and the stall rule see
-    limit = divergence_factor * gn
-    active = np.arange(B)
-    keys, step = keys_all, step_all
-    up = np.zeros(B)
-    down = np.zeros(B)
-    evals = np.zeros(B)
-    passes = np.zeros(B)
     # Models without rows (a quadratic test problem) count one evaluation per local gradient.
     sizes = getattr(problem, "worker_sizes", None)
     sizes = np.ones(n) if sizes is None else np.asarray(sizes, dtype=np.float64)
     m_max = int(problem.shards.m_max) if sampled else 0
-    gn_hist = [gn.copy()]
-    up_hist = [up.copy()]
-    down_hist = [down.copy()]
-    pass_hist = [passes.copy()]
     uneven = network is not None and network.uneven
-    secs = np.zeros(B)
-    slow = np.zeros((B, n))  # seconds each worker was the slowest waited one (uneven network)
-    secs_hist = [secs.copy()]
-    loss_log = [(0, active.copy(), loss0.mean(axis=1, dtype=np.float64))]
-    out: dict[int, tuple[str, int]] = {}
-    final_x = np.empty((B, d))
-    window = None if stall_window is None else np.broadcast_to(np.asarray(stall_window, dtype=np.float64), (B,))
-    best = metric.copy()
-    last_gain = np.zeros(B)
-    stop = False
-    halted = np.zeros(B, dtype=bool)  # trajectories a monitor stopped on their own
+    stalls = stall_window is not None
 
-    for k in range(max_rounds + 1):
-        status = np.full(active.shape, "", dtype=object)
-        status[~(np.isfinite(gn) & (gn <= limit[active]))] = "diverged"
+    curves = _Curves(("gn", "up", "down", "passes", "secs", "f"), min(max_rounds + 1, 1024))
+    rows: dict[str, np.ndarray] = {}  # the running rows' arrays, row-aligned (_Rows keys below)
+    ended: list[tuple] = []  # (id, record) of rows that ended, kept to the end (no refill)
+    result: dict[int, Trajectory] = {}
+    seed_of: list[int] = []
+
+    def new_rows(new_seeds, steps, windows, X, grads, loss) -> dict:
+        """The row arrays of trajectories at their round 0 (x^0 and its local gradients given)."""
+        b = len(new_seeds)
+        gn = _norm_sq(grads)
+        f0 = loss.mean(axis=1, dtype=np.float64)
+        metric = f0 - loss_ref if track_loss else gn
+        ids = np.arange(len(seed_of), len(seed_of) + b)
+        seed_of.extend(int(v) for v in new_seeds)
+        zero = np.zeros(b)
+        out = {"id": ids, "lk": np.zeros(b, dtype=np.int64), "keys": trajectory_keys(new_seeds),
+               "step": np.broadcast_to(np.asarray(steps, dtype=dtype), (b,)).copy(), "X": X, "grads": grads,
+               "gn": gn, "metric": metric, "limit": divergence_factor * gn, "best": metric.copy(),
+               "last_gain": zero.copy(), "halted": np.zeros(b, dtype=bool), "up": zero.copy(),
+               "down": zero.copy(), "evals": zero.copy(), "passes": zero.copy(), "secs": zero.copy(),
+               "slow": np.zeros((b, n)),  # seconds each worker was the slowest waited one (uneven network)
+               "window": np.broadcast_to(np.asarray(np.inf if windows is None else windows, dtype=np.float64),
+                                         (b,)).copy(),
+               "slot": curves.slots_for(b)}
+        curves.record(out["slot"], 0, {"gn": gn, "up": zero, "down": zero, "passes": zero, "secs": zero, "f": f0})
+        return out
+
+    X0 = np.broadcast_to(x0.astype(dtype), (B, d)).copy()
+    grads0, loss0 = problem.local_grads(X0, with_loss=True)
+    rows = new_rows(seeds, step_size, stall_window, X0, grads0, loss0)
+    stop = False
+    k = 0  # the engine's round; rows that joined later are at earlier local rounds rows["lk"]
+
+    while True:
+        lk = rows["lk"]
+        gn, metric = rows["gn"], rows["metric"]
+        status = np.full(lk.shape, "", dtype=object)
+        status[~(np.isfinite(gn) & (gn <= rows["limit"]))] = "diverged"
         status[metric <= target] = "reached"
         if max_bits_per_worker is not None:
-            status[(status == "") & (up[active] >= max_bits_per_worker)] = "bits_cap"
-        if window is not None:
-            better = metric < STALL_IMPROVEMENT * best[active]
-            best[active[better]] = metric[better]
-            last_gain[active[better]] = k
-            status[(status == "") & (k - last_gain[active] >= window[active])] = "stalled"
+            status[(status == "") & (rows["up"] >= max_bits_per_worker)] = "bits_cap"
+        if stalls:
+            better = metric < STALL_IMPROVEMENT * rows["best"]
+            rows["best"][better] = metric[better]
+            rows["last_gain"][better] = lk[better]
+            status[(status == "") & (lk - rows["last_gain"] >= rows["window"])] = "stalled"
         if stop:
             status[status == ""] = "stopped"
-        status[(status == "") & halted[active]] = "stopped"
-        if k == max_rounds:
-            status[status == ""] = "budget"
+        status[(status == "") & rows["halted"]] = "stopped"
+        status[(status == "") & (lk >= max_rounds)] = "budget"
         done = status != ""
+        join = None
         if done.any():
-            for j in np.flatnonzero(done):
-                out[int(active[j])] = (str(status[j]), k)
-            final_x[active[done]] = X[done]
+            records = [(int(rows["id"][j]), _record(rows, j, str(status[j]), curves)) for j in np.flatnonzero(done)]
             live = ~done
-            active, X, grads, keys, step = active[live], X[live], grads[live], keys[live], step[live]
-            meth.keep(np.flatnonzero(live))
-        if active.size == 0:
+            rows = {key: v[live] for key, v in rows.items()}
+            main = lk.size - n_fresh
+            meth.keep(np.flatnonzero(live[:main]))
+            if fresh is not None:
+                fresh.keep(np.flatnonzero(live[main:]))
+                n_fresh = int(live[main:].sum())
+            if refill is None:
+                ended.extend(records)
+            else:  # finished now: handed over at once, and the caller may fill the freed rows
+                with np.errstate(over="ignore", invalid="ignore"):
+                    loss_end = problem.local_losses(np.stack([r["x"] for _, r in records])).mean(axis=1)
+                done_now = []
+                for (i, rec), f_end in zip(records, loss_end):
+                    result[i] = _trajectory(seed_of[i], rec, f_end, loss_every=loss_every, loss_ref=loss_ref,
+                                            uneven=uneven)
+                    done_now.append((i, result[i]))
+                join = refill(done_now)
+        if rows["lk"].size == 0 and join is None:
             break
+        lk, X, keys = rows["lk"], rows["X"], rows["keys"]
+        rnd = k if refill is None else lk  # one round for all rows, or each row's own
         with np.errstate(over="ignore", invalid="ignore"):
-            if sampled:
-                W = minibatch_weights(keys, k, sizes, np.full(active.size, float(minibatch)), m_max)
-                g, bits = meth.direction(meth.stochastic_grads(X, W), keys, k, X)
-            else:
-                g, bits = meth.direction(grads, keys, k, X)
-        up[active] += bits.mean(axis=1)
-        used = meth.gradient_evals()
-        evals[active] += sizes.mean() if used is None else used.mean(axis=1)
-        passes[active] += 1.0 if used is None else (used / sizes).mean(axis=1)
-        sent = meth.downlink_bits()  # None: the server broadcasts one dense vector
-        down[active] += dense_bits(d) if sent is None else sent
-        if uneven:
+            W = None
+            if sampled and lk.size:
+                W = minibatch_weights(keys, rnd, sizes, np.full(lk.size, float(minibatch)), m_max)
+            parts = [(meth, slice(0, lk.size - n_fresh))] + ([(fresh, slice(lk.size - n_fresh, lk.size))]
+                                                             if n_fresh else [])
+            outs = [(np.empty((0, d), dtype=dtype), np.empty((0, n)), None, None, None, 0)]  # no running rows
+            for m, sl in parts:
+                if sl.stop == sl.start:
+                    continue
+                grads = m.stochastic_grads(X[sl], W[sl]) if sampled else rows["grads"][sl]
+                g, bits = m.direction(grads, keys[sl], rnd if np.ndim(rnd) == 0 else rnd[sl], X[sl])
+                outs.append((g, bits, m.gradient_evals(), m.downlink_bits(), m.waited(), sl.stop - sl.start))
+            g, bits, used, sent, waited = _stack_outputs(outs[1:] or outs, sizes, dense_bits(d))
+        if fresh is not None:
+            meth.append(fresh)
+            fresh, n_fresh = None, 0
+        rows["up"] += bits.mean(axis=1)
+        rows["evals"] += sizes.mean() if used is None else used.mean(axis=1)
+        rows["passes"] += 1.0 if used is None else (used / sizes).mean(axis=1)
+        rows["down"] += dense_bits(d) if sent is None else sent
+        if uneven and lk.size:
             per_pass = np.ones_like(bits) if used is None else used / sizes
-            t, who = network.round_seconds(bits, per_pass, meth.waited(), dense_bits(d) if sent is None else sent)
-            secs[active] += t
-            slow[active, who] += t
-        want_loss = loss_every > 0 and (k + 1) % loss_every == 0
+            t, who = network.round_seconds(bits, per_pass, waited, dense_bits(d) if sent is None else sent)
+            rows["secs"] += t
+            rows["slow"][np.arange(lk.size), who] += t
+        lk = rows["lk"] = lk + 1
+        want_loss = loss_every > 0 and bool(np.any(lk % loss_every == 0))
+        if join is not None:  # the newcomers' x^0 shares the round's one pass over the data
+            if not stalls and join.stall_window is not None:
+                raise ValueError("refill: stall windows need a batch started with one (stall_window)")
+            b_new = len(join.seeds)
+            fresh, n_fresh = build(join.compressor, b_new, join.params), b_new
         # Overflow and NaN are expected on diverging trajectories: they are
         # caught by the divergence test above, not raised.
         with np.errstate(over="ignore", invalid="ignore"):
-            X = X - step[:, None] * g.astype(dtype, copy=False)  # a method may upcast its state
-            grads, lossk = problem.local_grads(X, with_loss=want_loss or track_loss)
-            gn = _norm_sq(grads)
-            metric = lossk.mean(axis=1, dtype=np.float64) - loss_ref if track_loss else gn
-        if track_loss:
-            row = np.full(B, np.nan)
-            row[active] = lossk.mean(axis=1, dtype=np.float64)
-            f_hist.append(row)
-        if want_loss:
-            loss_log.append((k + 1, active.copy(), lossk.mean(axis=1, dtype=np.float64)))
-        row = np.full(B, np.nan)
-        row[active] = gn
-        gn_hist.append(row)
-        for hist, total in ((up_hist, up), (down_hist, down), (pass_hist, passes), (secs_hist, secs)):
-            row = np.full(B, np.nan)
-            row[active] = total[active]
-            hist.append(row)
-        if monitor is not None:
+            Xn = X - rows["step"][:, None] * g.astype(dtype, copy=False)  # a method may upcast its state
+            if join is not None:
+                Xn = np.concatenate([Xn, np.broadcast_to(x0.astype(dtype), (b_new, d))])
+            grads, lossk = problem.local_grads(Xn, with_loss=want_loss or track_loss or join is not None)
+            b_old = lk.size
+            gn = _norm_sq(grads[:b_old])
+            f_k = None if lossk is None else lossk[:b_old].mean(axis=1, dtype=np.float64)
+            metric = f_k - loss_ref if track_loss else gn
+        rows.update(X=Xn[:b_old], grads=grads[:b_old], gn=gn, metric=metric)
+        curves.record(rows["slot"], lk, {"gn": gn, "up": rows["up"], "down": rows["down"], "passes": rows["passes"],
+                                         "secs": rows["secs"], **({} if f_k is None else {"f": f_k})})
+        if monitor is not None and b_old:
             if uneven:
-                cost = secs[active]
+                cost = rows["secs"]
             elif network is not None:  # even: the cost formula at this round, the broadcast as counted
-                cost = network.seconds_at(k + 1, passes[active], up[active], down[active])
+                cost = network.seconds_at(k + 1 if refill is None else lk, rows["passes"], rows["up"], rows["down"])
             else:
-                cost = up[active]
-            verdict = monitor(k + 1, active, cost, metric)
+                cost = rows["up"]
+            verdict = monitor(k + 1 if refill is None else lk, rows["id"], cost, metric)
             if np.ndim(verdict) == 0:
                 stop = stop or bool(verdict)
             else:
-                halted[active[np.asarray(verdict, dtype=bool)]] = True
+                rows["halted"][np.asarray(verdict, dtype=bool)] = True
+        if join is not None:
+            new = new_rows(np.atleast_1d(np.asarray(join.seeds, dtype=np.int64)), join.step_size,
+                           join.stall_window, Xn[b_old:], grads[b_old:], lossk[b_old:])
+            rows = {key: np.concatenate([v, new[key]]) for key, v in rows.items()}
+        k += 1
 
+    if refill is not None:
+        return [result[i] for i in range(len(seed_of))]
+    ended.sort(key=lambda item: item[0])
     with np.errstate(over="ignore", invalid="ignore"):
-        loss_end = problem.local_losses(final_x).mean(axis=1)
-    gn_hist = np.array(gn_hist)
-    up_hist, down_hist, pass_hist = np.array(up_hist), np.array(down_hist), np.array(pass_hist)
-    secs_hist = np.array(secs_hist)
-    f_hist = None if f_hist is None else np.array(f_hist)
-    result = []
-    for b in range(B):
-        status, rounds = out[b]
-        if f_hist is not None:  # f at every round: x^rounds is the last iterate
-            lr = list(zip(range(rounds + 1), f_hist[: rounds + 1, b]))
-        else:
-            lr = [(r, vals[np.flatnonzero(idx == b)[0]]) for r, idx, vals in loss_log if r < rounds and b in idx]
-            lr.append((rounds, loss_end[b]))
-        result.append(
-            Trajectory(
-                seed=int(seeds[b]),
-                status=status,
-                rounds=rounds,
-                uplink_bits=float(up[b]),
-                downlink_bits=float(down[b]),
-                gradient_evals=float(evals[b]),
-                gradient_passes=float(passes[b]),
-                grad_norm_sq=gn_hist[: rounds + 1, b].copy(),
-                uplink_curve=up_hist[: rounds + 1, b].copy(),
-                loss_rounds=np.array([r for r, _ in lr], dtype=np.int64),
-                loss=np.array([v for _, v in lr], dtype=np.float64),
-                x=final_x[b].copy(),
-                progress=None if f_hist is None else f_hist[: rounds + 1, b] - loss_ref,
-                downlink_curve=down_hist[: rounds + 1, b].copy(),
-                passes_curve=pass_hist[: rounds + 1, b].copy(),
-                seconds_curve=secs_hist[: rounds + 1, b].copy() if uneven else None,
-                worker_shares=(slow[b] / secs[b] if secs[b] > 0 else slow[b]) if uneven else None,
-            )
-        )
-    return result
+        loss_end = problem.local_losses(np.stack([r["x"] for _, r in ended])).mean(axis=1)
+    return [_trajectory(seed_of[i], rec, f_end, loss_every=loss_every, loss_ref=loss_ref, uneven=uneven)
+            for (i, rec), f_end in zip(ended, loss_end)]
+
+
+class _Curves:
+    """Per-row curves of a batch: one column per row slot (a slot is reused once its row ended), one
+    line per local round, grown by doubling; a row's curve is read once, when it ends."""
+
+    def __init__(self, names, cap: int) -> None:
+        self.buf = {key: np.full((cap, 0), np.nan) for key in names}
+        self.free: list[int] = []
+
+    def slots_for(self, count: int) -> np.ndarray:
+        take, self.free = self.free[:count], self.free[count:]
+        have = next(iter(self.buf.values())).shape[1]
+        extra = count - len(take)
+        if extra:
+            self.buf = {key: np.concatenate([b, np.full((b.shape[0], extra), np.nan)], axis=1)
+                        for key, b in self.buf.items()}
+            take += list(range(have, have + extra))
+        return np.asarray(take, dtype=np.int64)
+
+    def record(self, slot: np.ndarray, rnd, values: dict) -> None:
+        top = int(np.max(rnd)) if np.size(rnd) else 0
+        cap = next(iter(self.buf.values())).shape[0]
+        if top >= cap:
+            grow = max(cap, top + 1 - cap)
+            self.buf = {key: np.concatenate([b, np.full((grow, b.shape[1]), np.nan)]) for key, b in self.buf.items()}
+        for key, v in values.items():
+            self.buf[key][rnd, slot] = v
+
+    def take(self, slot: int, rounds: int) -> dict:
+        self.free.append(slot)
+        return {key: b[: rounds + 1, slot].copy() for key, b in self.buf.items()}
+
+
+def _record(rows: dict, j: int, status: str, curves: _Curves) -> dict:
+    """What a trajectory needs once its row j ended (its curves read from their slot, which is freed)."""
+    rounds = int(rows["lk"][j])
+    rec = {key: float(rows[key][j]) for key in ("up", "down", "evals", "passes", "secs")}
+    rec.update(status=status, rounds=rounds, x=np.asarray(rows["X"][j], dtype=np.float64).copy(),
+               slow=rows["slow"][j].copy(), curves=curves.take(int(rows["slot"][j]), rounds))
+    return rec
+
+
+def _trajectory(seed: int, rec: dict, loss_end: float, *, loss_every: int, loss_ref, uneven: bool) -> Trajectory:
+    c, rounds = rec["curves"], rec["rounds"]
+    if loss_ref is not None:  # f at every round: x^rounds is the last iterate
+        loss_rounds = np.arange(rounds + 1, dtype=np.int64)
+        loss = c["f"]
+    else:  # f at x^0, every loss_every rounds, and at the last iterate
+        loss_rounds = np.arange(0, rounds, loss_every if loss_every > 0 else max(rounds, 1), dtype=np.int64)
+        loss = np.append(c["f"][loss_rounds], loss_end)
+        loss_rounds = np.append(loss_rounds, rounds)
+    secs = rec["secs"]
+    return Trajectory(
+        seed=seed, status=rec["status"], rounds=rounds, uplink_bits=rec["up"], downlink_bits=rec["down"],
+        gradient_evals=rec["evals"], gradient_passes=rec["passes"], grad_norm_sq=c["gn"], uplink_curve=c["up"],
+        loss_rounds=loss_rounds, loss=np.asarray(loss, dtype=np.float64), x=rec["x"],
+        progress=None if loss_ref is None else c["f"] - loss_ref, downlink_curve=c["down"], passes_curve=c["passes"],
+        seconds_curve=c["secs"] if uneven else None,
+        worker_shares=(rec["slow"] / secs if secs > 0 else rec["slow"]) if uneven else None)
+
+
+def _stack_outputs(outs, sizes: np.ndarray, dense: float):
+    """One round's direction, bits, gradient evaluations, broadcast bits and waited workers of the
+    batch from those of its method instances (the running rows, then the rows at their round 0)."""
+    if len(outs) == 1:
+        return outs[0][:5]
+    (g1, b1, u1, s1, w1, r1), (g2, b2, u2, s2, w2, r2) = outs
+    return (np.concatenate([g1, g2]), np.concatenate([b1, b2]), stack_rows(u1, u2, r1, r2, sizes),
+            stack_rows(s1, s2, r1, r2, dense), stack_rows(w1, w2, r1, r2, np.ones(sizes.shape, dtype=bool)))
 
 
 def _norm_sq(grads: np.ndarray) -> np.ndarray:

@@ -19,7 +19,7 @@ from .._random import STREAM, uniform
 __all__ = ["SameRows", "minibatch_weights", "paired_grads"]
 
 
-def minibatch_weights(keys: np.ndarray, round_: int, sizes: np.ndarray, b: np.ndarray, m_max: int) -> np.ndarray:
+def minibatch_weights(keys: np.ndarray, round_, sizes: np.ndarray, b: np.ndarray, m_max: int) -> np.ndarray:
     """Weights (B, n, m_max) of one round's draw: b (B,) rows per worker, sizes (n,) = m_i."""
     B, n = keys.shape[0], sizes.shape[0]
     slots = int(b.max())

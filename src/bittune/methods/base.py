@@ -48,6 +48,7 @@ class Method(ABC):
         self._evals: np.ndarray | None = None  # (B, n) per-sample gradients of the last round
         self.n = int(n_workers)
         self.d = int(dim)
+        self.size = int(batch)  # trajectories (rows) in this instance: :meth:`keep` and :meth:`append` change it
         self.p: dict[str, np.ndarray] = {}
         for key, default in self.params.items():
             value = params.pop(key, None)
@@ -82,7 +83,7 @@ class Method(ABC):
 
     @abstractmethod
     def direction(
-        self, grads: np.ndarray, keys: np.ndarray, round_: int, X: np.ndarray | None = None
+        self, grads: np.ndarray, keys: np.ndarray, round_, X: np.ndarray | None = None
     ) -> tuple[np.ndarray, np.ndarray]:
         """Direction (B, d) from local gradients (B, n, d) at the iterates X (B, d), and uplink bits (B, n)."""
 
@@ -109,6 +110,46 @@ class Method(ABC):
         keep = getattr(self.compressor, "keep", None)  # a per-trajectory compressor (PerTrajectory)
         if keep is not None:
             keep(index)
+        self.size = len(index)
+
+    def append(self, other: "Method") -> None:
+        """Add the trajectories of ``other`` (an instance of the same method that has run its round 0
+        on them alone) after this instance's rows: trajectories joining a running batch
+        (docs/design.md, "The engine"). Concatenates the parameters, the state, the last round's
+        broadcast bits, waited workers and gradient evaluations, and the compressor (one per
+        trajectory, :func:`~bittune.compressors.stack_compressors`). A method whose state after round
+        0 lacks keys that later rounds add must override this."""
+        from ..compressors import stack_compressors
+
+        if type(other) is not type(self):
+            raise ValueError(f"{self.name}: cannot append trajectories of {other.name}")
+        if other.size == 0:
+            return
+        if self.size == 0:  # nothing running (maybe no round run yet): take the newcomers' state as it is
+            self.p, self.state, self.compressor, self.size = other.p, other.state, other.compressor, other.size
+            self._down_bits, self._waited, self._evals = other._down_bits, other._waited, other._evals
+            return
+        if set(self.state) != set(other.state) or set(self.p) != set(other.p):
+            raise ValueError(f"{self.name}: state {sorted(self.state)} and joining state {sorted(other.state)} differ")
+        self.p = {k: np.concatenate([v, other.p[k]]) for k, v in self.p.items()}
+        self.state = {k: np.concatenate([v, other.state[k]]) for k, v in self.state.items()}
+        sizes = getattr(self.problem, "worker_sizes", None)
+        full = np.ones(self.n) if sizes is None else np.asarray(sizes, dtype=np.float64)
+        self._down_bits = stack_rows(self._down_bits, other._down_bits, self.size, other.size, dense_bits(self.d))
+        self._waited = stack_rows(self._waited, other._waited, self.size, other.size, np.ones(self.n, dtype=bool))
+        self._evals = stack_rows(self._evals, other._evals, self.size, other.size, full)
+        self.compressor = stack_compressors(self.compressor, self.size, other.compressor, other.size)
+        self.size += other.size
 
     def _dense(self, grads: np.ndarray) -> np.ndarray:
         return np.full(grads.shape[:2], dense_bits(self.d))
+
+
+def stack_rows(a, b, rows_a: int, rows_b: int, none_means):
+    """Rows of a per-round array of two instances, one after the other; None (the default meaning,
+    e.g. "a dense broadcast") stays None when both are None, else becomes ``none_means`` per row."""
+    if a is None and b is None:
+        return None
+    fill = lambda x, rows: np.broadcast_to(np.asarray(none_means), (rows,) + np.shape(none_means)) \
+        if x is None else x  # noqa: E731
+    return np.concatenate([fill(a, rows_a), fill(b, rows_b)])
