@@ -122,7 +122,8 @@ def compare(folder: Path, method: str, *, trials: int, validation: int, quick: b
     wall_d = time.perf_counter() - t0
     evals_b = trials + validations(sel)
     print(f"\n{method.upper()} + {name}: mean uplink bits per worker over {len(fresh)} fresh seeds; "
-          f"grid {len(points)} distinct points ({wall_c:.0f} s), tune {wall_b:.0f} s, plain {wall_d:.0f} s")
+          f"grid {len(points)} distinct points ({wall_c:.0f} s), tune {wall_b:.0f} s (search.trial_batch "
+          f"{job.search.trial_batch}), plain {wall_d:.0f} s")
     print_four(a, b, c, d, trials=trials, evals_b=evals_b, grid_size=len(points), plain_trials=n_d)
     print(f"  steps over 1/L = {1 / constants.L:.4g}: (a) x{a.candidate.step_size * constants.L:.3g}, "
           f"(b) x{b.candidate.step_size * constants.L:.3g}, (c) x{c.candidate.step_size * constants.L:.3g}, "
