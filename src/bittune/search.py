@@ -848,7 +848,7 @@ def _fail_beatless_trials(study: optuna.Study) -> int:
 def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: float = 1.0) -> int:
     """Run trials in this process until ``budget`` trials are finished (complete or pruned).
 
-    With ``search.trial_batch`` above 1 (the default is 8), up to that many trials share one
+    With ``search.trial_batch`` above 1 (the default is 1), up to that many trials share one
     refilling engine batch (:mod:`bittune.batch`). Otherwise each trial runs through
     ``study.optimize(n_trials=1)``, so database heartbeats work. While the rest of the budget is running in other
     processes, this one waits and recovers trials whose heartbeat stopped (a
