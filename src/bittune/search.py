@@ -747,7 +747,7 @@ def enqueue_refinement(study: optuna.Study, space: Space, *, budget: int, seeds:
         return 0
     counted = len(study.get_trials(deepcopy=False, states=COUNTED))
     added = 0
-    for start, factors in refine_plan(budget):
+    for stage, (start, factors) in enumerate(refine_plan(budget)):
         key = f"refined_{start}"
         if counted < start or study.user_attrs.get(key):
             continue
@@ -759,7 +759,7 @@ def enqueue_refinement(study: optuna.Study, space: Space, *, budget: int, seeds:
         best = min(done, key=lambda t: t.value)
         cand = space.from_params(best.params)
         name, lo, hi = space.step_param(cand.method, cand.compressor)
-        if start != refine_plan(budget)[0][0]:
+        if stage > 0:
             factors = _bracket_factors(study, best, name, seeds=seeds, points=len(factors)) or factors
         for f in factors:
             params = dict(best.params, **{name: _clip(best.params[name] * f, (lo, hi))})
