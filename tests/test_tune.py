@@ -239,7 +239,7 @@ def test_killed_run_resumes_without_losing_trials(frost, tmp_path):
 
 @pytest.mark.slow
 def test_seconds_objective_follows_the_network(tmp_path):
-    """Fast links favour few rounds (dense GD); a slow metered uplink favours compressed messages."""
+    """Fast links favour few rounds (as few as dense GD); a slow metered uplink favours compressed messages."""
     data = tmp_path / "st.svm"
     subprocess.run([sys.executable, str(ROOT / "examples/frost/make_data.py"), "--out", str(data), "--nights",
                     "300"], check=True, capture_output=True)
@@ -276,8 +276,21 @@ search: {{methods: [gd, diana], compressors: [dither], trials: 30, seeds: 2}}
         assert result.report["convergence_seconds"].exists()
         study = optuna.load_study(study_name=summary["study"], storage=open_storage(summary["storage"]))
         assert "convergence_seconds" in report_data(summary, study)
-        chosen[name] = cfg["method"]
-    assert chosen == {"fast": "gd", "metered": "diana"}
+        sel = summary["selection"]
+        if name == "fast":
+            # GD's best trial ties the best DIANA trial on the search seeds (16 rounds each): it is validated
+            # too (select.METHOD_MARGIN), and the back-off may not give up the win to it.
+            assert "gd" in {f["method"] for f in sel["finalists"]}
+        rivals = [f["mean_seconds"] for f, t in zip(sel["finalists"], sel["transfer"])
+                  if f["method"] != cfg["method"] and t["passed"]]  # passed: every seed on sample and resample
+        assert sel["winner"]["mean_seconds"] <= min(rivals, default=np.inf)
+        chosen[name] = (cfg["method"], np.mean(rounds), sel["gd"]["mean_rounds"])
+    # Fast links: seconds are rounds x 11 ms (bits cost ~1e-9 s), so the winner needs no more rounds than
+    # tuned dense GD on the same fresh seeds (a compressed method may tie it: DIANA with fine dithering
+    # at GD's step did, 16 rounds each). A metered uplink: the compressed method wins, on more rounds.
+    (_, fast_rounds, fast_gd), (metered_method, metered_rounds, _) = chosen["fast"], chosen["metered"]
+    assert fast_rounds <= fast_gd
+    assert metered_method == "diana" and metered_rounds > fast_rounds
 
 
 @pytest.mark.slow

@@ -50,9 +50,10 @@ COUNTED = (TrialState.COMPLETE, TrialState.PRUNED, TrialState.RUNNING)
 #: Step multipliers enqueued above the theory point (docs/design.md: theory is timid).
 SEED_LADDER = (1.0, 2.0, 4.0, 16.0, 64.0, 256.0)
 #: Anchor multipliers enqueued after the theory point for a method whose theory rule gives a
-#: search anchor (EF21: 1/L; docs/theory.md §2.9): around the anchor (good EF21 steps measured
-#: at 2-5/L on benchmarks/quality.py's problem, whose L is a global bound).
-ANCHOR_LADDER = (0.25, 1.0, 2.0, 4.0, 8.0)
+#: search anchor (EF21: 1/L, DIANA: 1/(2L); docs/theory.md §2.9, §2.3): around the anchor and far
+#: above it (good steps measured at 2-5/L on benchmarks/quality.py's problem, 16-22/L on the demo
+#: data, where the probe's L overstates the curvature along the run).
+ANCHOR_LADDER = (0.25, 1.0, 2.0, 4.0, 8.0, 32.0)
 #: Methods with MARINA's sync probability p (searched as a multiplier of the theory p).
 SYNCED = ("marina", "pp_marina", "vr_marina")
 #: Minimum stall window in rounds; MARINA's grows like 1/p (docs/design.md measurements).

@@ -55,6 +55,11 @@ __all__ = ["Evaluation", "Selection", "Gain", "validation_seeds", "evaluate", "s
 #: Confidence level and resamples of the paired bootstrap intervals of the gains (common practice, no source:
 #: 95%, and enough resamples that the percentile ends move by well under 1% between generator seeds).
 GAIN_LEVEL, GAIN_RESAMPLES = 0.95, 9999
+#: A method whose best trial's search value is within this factor of the study's best joins the
+#: finalists (common practice, no source; docs/design.md, "Selection"). Measured: on the fast network of
+#: tests/test_tune.py a DIANA trial tied dense GD's 16 rounds on the two search seeds and took 16.8 on
+#: average on the fresh ones, while GD stayed at 16.
+METHOD_MARGIN = 1.1
 
 
 @dataclass
@@ -293,7 +298,8 @@ def _best_rung(ws, ladder: list[Evaluation], network) -> Candidate:
 
 
 def finalists(study, space: Space, *, count: int) -> list[Candidate]:
-    """The best ``count`` distinct completed candidates, best first. A front study's finalists are its
+    """The best ``count`` distinct completed candidates, best first, then the best candidate of each other
+    method whose value is within ``METHOD_MARGIN`` of the best. A front study's finalists are its
     non-dominated trials (``study.best_trials``): at most FRONT_TRIALS, evenly spread by bits."""
     if len(study.directions) > 1:
         return _front_finalists(study, space)
@@ -307,6 +313,16 @@ def finalists(study, space: Space, *, count: int) -> list[Candidate]:
             out.append(cand)
         if len(out) == count:
             break
+    # A method whose best search value comes within METHOD_MARGIN of the study's best is validated
+    # too: two or three search seeds cannot separate near-ties, and the fresh seeds can.
+    methods = {c.method for c in out}
+    for t in trials:
+        if t.value > METHOD_MARGIN * trials[0].value:
+            break
+        cand = space.from_params(t.params)
+        if cand.method not in methods:
+            methods.add(cand.method)
+            out.append(cand)
     return out
 
 
@@ -424,6 +440,13 @@ def select(ws, space: Space, study, network=None, log=None) -> Selection:
         # A front's winner keeps a smaller step only while neither of its two costs grows by more.
         cost = (lambda e: np.array(e.both)) if prefer is not None else (lambda e: np.array([e.mean_cost]))
         limit = cost(winner) * (1.0 + spec.backoff_tolerance)
+        # Nor above a passed finalist of another method or compressor: the back-off must not hand
+        # the win to a setting the validation beat (a smaller step of the same setting may cost more).
+        if prefer is None:
+            own = (winner.candidate.method, winner.candidate.label)
+            rivals = [cost(e) for i, e in enumerate(evals) if (e.candidate.method, e.candidate.label) != own
+                      and e.all_reached and resampled[i].all_reached]
+            limit = np.minimum(limit, min(rivals, key=lambda c: c[0])) if rivals else limit
         best = winner
         for e in backoff:
             if not (e.all_reached and np.all(cost(e) <= limit)):

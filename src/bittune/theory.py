@@ -160,11 +160,11 @@ def diana_rule(compressor: Compressor, constants: Constants, *, target: float) -
 
 
 #: DIANA's search range as multipliers of its anchor 1/(2L) (docs/theory.md §2.3, "Search anchor";
-#: common practice, no source): 1/(64 L) to 4/L. Good DIANA steps were measured at 0.9-2/L for
-#: K = 2..29 on benchmarks/quality.py's problem, and every trial above 2.5-4/L missed the target;
-#: the wider (1/512, 32) spent a third of a 60-trial study at its two ends. A theory step below the
-#: range (small K/d) is clipped to its lower end when enqueued.
-DIANA_ANCHOR_RANGE = (1.0 / 32.0, 8.0)
+#: common practice, no source): 1/(64 L) to 32/L. Good DIANA steps were measured at 0.9-2/L for
+#: K = 2..29 on benchmarks/quality.py's problem but at 17-22/L on the demo data (the probe's L is
+#: measured where the probe ran, not along the run); the low end 1/512 spent a fifth of a 60-trial
+#: study below 0.1 anchors. A theory step below the range (small K/d) is clipped to its lower end.
+DIANA_ANCHOR_RANGE = (1.0 / 32.0, 64.0)
 
 
 def diana_search_anchor(c: Constants) -> dict:
@@ -306,8 +306,9 @@ def ef21_rule(compressor: Compressor, constants: Constants, *, target: float,
 
 #: EF21's search range as multipliers of its anchor 1/L (docs/theory.md §2.9, "Search anchor";
 #: common practice, no source): down to 1/256 (the theory step at K = 1 for d up to ~128 when
-#: L_QM ~ L) and up to 16/L (the probe's L is a global bound; good steps measured at 2-5/L).
-EF21_ANCHOR_RANGE = (1.0 / 256.0, 16.0)
+#: L_QM ~ L) and up to 64/L: the probe's L is measured at the probe points, and good steps were
+#: 2-5/L on benchmarks/quality.py's problem but reached the former cap 16/L on the demo data.
+EF21_ANCHOR_RANGE = (1.0 / 256.0, 64.0)
 
 
 def ef21_search_anchor(c: Constants) -> dict:
