@@ -197,7 +197,7 @@ class _Refiller:
         """Ask up to ``count`` trials within the global budget and plan them; (trial, plan) pairs."""
         from optuna.storages._heartbeat import get_heartbeat_thread
 
-        from .search import COUNTED, enqueue_refinement
+        from .search import COUNTED, enqueue_refinement, over_budget
 
         study = self.study
         # The budget's last tenth refines the best step (docs/design.md, "Step refinement"): enqueued
@@ -212,7 +212,7 @@ class _Refiller:
         counted = study.get_trials(deepcopy=False, states=COUNTED)
         kept = []
         for t in asked:
-            if sum(1 for c in counted if c.number < t.number) >= self.budget:
+            if over_budget(counted, t.number, self.budget):
                 _fail(study, t, "over the trial budget")
             else:
                 stack = contextlib.ExitStack()

@@ -785,6 +785,13 @@ def _bracket_factors(study: optuna.Study, best, name: str, *, seeds: int, points
     return tuple(gap ** (j / (points + 1)) for j in range(1, points + 1))
 
 
+def over_budget(counted, number: int, budget: int) -> bool:
+    """True when ``budget`` counted trials (:data:`COUNTED`, from ``counted``) were asked before trial
+    ``number``: another process took the budget's last place first (docs/design.md, "Storage, resume, parallel
+    processes"). One rule for both runners: :func:`run_trials` and :mod:`bittune.batch`."""
+    return sum(1 for c in counted if c.number < number) >= budget
+
+
 class _OverBudget(Exception):
     """Raised inside a trial that was asked for after the global budget was taken."""
 
@@ -867,8 +874,7 @@ def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: 
     finished_states = (TrialState.COMPLETE, TrialState.PRUNED)
 
     def guarded(trial: optuna.Trial) -> float:
-        ahead = [t for t in study.get_trials(deepcopy=False, states=COUNTED) if t.number < trial.number]
-        if len(ahead) >= budget:
+        if over_budget(study.get_trials(deepcopy=False, states=COUNTED), trial.number, budget):
             trial.set_user_attr("failed_reason", "over the trial budget")
             raise _OverBudget()
         try:
