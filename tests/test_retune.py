@@ -178,3 +178,37 @@ def test_decision_rule_needs_margin_and_significance():
     assert decide(old, broken)[0] == "replaced"
     assert decide(broken, broken)[0] == "failed"
     assert np.isnan(decide(broken, broken)[2])
+
+
+@pytest.mark.parametrize("method", ["marina", "diana"])
+def test_small_drift_narrows_the_step_in_the_units_the_method_searches(method):
+    """MARINA's step is drawn over its theory step (search.step_range), DIANA's over its search anchor
+    1/(2L) (docs/theory.md §2.3): retune's x/÷4 window around the previous step lands in that unit."""
+    from dataclasses import replace
+
+    import numpy as np
+
+    from bittune.constants import Constants
+    from bittune.job import SECTIONS, SearchSpec
+    from bittune.retune import _narrowed
+    from bittune.search import Candidate, Space
+
+    defaults = {k: p.default for k, p in SECTIONS["search"].items()}
+    spec = SearchSpec(**{**defaults, "methods": ["marina", "diana"], "compressors": ["rand_k"], "seeds": 2})
+    # f(x) = 1/2 x^T diag(a) x on identical workers: L = L_QM = max a = 2 (Nesterov 2004, §1.2.2, from memory).
+    c = Constants(n_workers=4, dim=8, L=2.0, L_workers=np.full(4, 2.0), L_plus=2.0, L_pm=0.0, delta0=1.0,
+                  grad_sq0=1.0, local_grad_sq0=1.0, heterogeneity0=0.0)
+    space = Space(spec, c, target=1e-6)
+    comp = {"name": "rand_k", "k": 2}
+    t = space.theory(method, comp)
+    unit = t.step_size if t.search_anchor is None else t.search_anchor
+    assert (t.search_anchor is None) == (method == "marina")
+    prev = Candidate(method, comp, step_size=3.0 * unit, sync_probability=t.sync_probability,
+                     shift_rate=t.shift_rate)
+    over = _narrowed(spec, prev, space)
+    key = "step_range" if method == "marina" else "anchor_range"
+    assert over[key] == pytest.approx((0.75, 12.0))  # 3 x/÷ 4, inside both default ranges
+    narrowed = Space(replace(spec, **over), c, target=1e-6)
+    name, lo, hi = narrowed.step_param(method, comp)
+    assert (lo, hi) == pytest.approx((0.75, 12.0))
+    assert name == f"{method}.{'anchor_mult' if key == 'anchor_range' else 'step_mult'}"

@@ -150,6 +150,9 @@ class SearchSpec:
     backoff_tolerance: float
     bits_cap_factor: float
     trial_batch: int = 1
+    #: Not a job key: retune's narrowed multiplier range over an anchored method's search anchor (the
+    #: theory rule's ``search_range`` when None; docs/design.md, "Nightly retuning").
+    anchor_range: tuple | None = None
 
 
 @dataclass(frozen=True)

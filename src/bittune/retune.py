@@ -180,11 +180,13 @@ def _previous_best(cfg: Config, path: Path, count: int = 3) -> list[Candidate]:
 def _narrowed(spec, cand: Candidate, space) -> dict:
     """Search overrides around the previous winner (small drift)."""
     t = space.theory(cand.method, cand.compressor, cand.clients, cand.minibatch)
-    m = cand.step_size / t.step_size
-    lo, hi = spec.step_range
     out = {"methods": [cand.method],
-           "compressors": [cand.compressor["name"]] if cand.method != "gd" else list(spec.compressors),
-           "step_range": (max(lo, min(m / 4, hi)), min(hi, max(m * 4, lo)))}
+           "compressors": [cand.compressor["name"]] if cand.method != "gd" else list(spec.compressors)}
+    # An anchored method (theory rule's search_anchor) draws its step over the anchor: narrow that range.
+    key, unit, (lo, hi) = (("step_range", t.step_size, spec.step_range) if t.search_anchor is None
+                           or cand.method == "gd" else ("anchor_range", t.search_anchor, t.search_range))
+    m = cand.step_size / unit
+    out[key] = (max(lo, min(m / 4, hi)), min(hi, max(m * 4, lo)))
     if cand.method in SYNCED and cand.sync_probability:
         s = cand.sync_probability / t.sync_probability
         out["sync_range"] = (max(spec.sync_range[0], min(s / 3, spec.sync_range[1])),

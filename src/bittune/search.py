@@ -248,7 +248,7 @@ class Space:
         anchor = self._anchor(method, compressor)
         if anchor is None:
             return (f"{method}.step_mult", *self.spec.step_range)
-        return (f"{method}.anchor_mult", *anchor[1])
+        return (f"{method}.anchor_mult", *(self.spec.anchor_range or anchor[1]))
 
     def step_unit(self, method: str, compressor: dict) -> float:
         """The step multiplier over the theory step that one unit of :meth:`step_param` is."""
