@@ -293,6 +293,23 @@ search: {{methods: [gd, diana], compressors: [dither], trials: 30, seeds: 2}}
     assert metered_method == "diana" and metered_rounds > fast_rounds
 
 
+def test_when_no_finalist_reaches_the_back_off_finds_a_step_that_does(tmp_path):
+    """GD on least squares diverges for steps above 2/lambda_max and converges below (Nesterov 2004,
+    §1.2.3, from memory). With the search confined to 2.5-3.5 theory steps (1/L each, L >= lambda_max
+    up to the probe's safety factor) no trial and no finalist reaches the target; halving the step
+    (search.backoff_factor 2) lands in the stable range, so the selection returns that step, on every
+    fresh seed, and the tune exits 0 instead of writing a best effort."""
+    job = _job(tmp_path, _well_conditioned(tmp_path), model="least_squares", reg=0.01, workers=4, target=1e-8,
+               methods=("gd",), compressors=("identity",), trials=6, rounds=2000,
+               extra="  pruner: none\n  step_range: [2.5, 3.5]\n")
+    result = tune(job, output=tmp_path / "c.yaml", progress=Quiet())
+    sel = result.selection
+    assert not any(e.all_reached for e in sel.finalists)
+    assert result.exit_code == 0 and sel.winner.all_reached
+    # The chosen finalist's step halved once: at most 1.75 theory steps, stable.
+    assert sel.winner.candidate.step_size == pytest.approx(sel.chosen.candidate.step_size / 2, rel=1e-12)
+
+
 @pytest.mark.slow
 def test_a_numerical_fault_fails_one_trial_not_the_study(frost, tmp_path, monkeypatch):
     import bittune.search as search

@@ -7,7 +7,9 @@ the one with the lowest mean cost (bits, or simulated seconds) that reached
 the target on every fresh seed.
 Its step is then halved (by ``backoff_factor``, at most ``backoff_steps``
 times) while the mean bits grow by less than ``backoff_tolerance``, so the
-chosen point sits away from the divergence edge. The theory setting of the
+chosen point sits away from the divergence edge; when no finalist reached the
+target on every fresh seed, the first of those smaller steps that does is the
+winner (a best effort only if none does). The theory setting of the
 winning method runs on the same seeds as the theory baseline.
 
 A gain over a timid theory step says little on its own, so the selection also
@@ -432,11 +434,16 @@ def select(ws, space: Space, study, network=None, log=None) -> Selection:
         pending_baseline = _start_baseline(ws, space, winner.candidate.method, seeds, network,
                                            task=base_task.part())
     backoff: list[Evaluation] = []
-    if winner.all_reached and spec.backoff_steps > 0:
+    if spec.backoff_steps > 0:
         steps = [winner.candidate.step_size / spec.backoff_factor ** j for j in range(1, spec.backoff_steps + 1)]
         back_task = start_task(log, "back-off", len(steps) * S, "trajectories")
         backoff = evaluate(ws, [winner.candidate.with_step(s) for s in steps], seeds, network, task=back_task)
         back_task.finish()
+    if backoff and not winner.all_reached:
+        # No finalist reached the target on every fresh seed: the largest smaller step that does (a
+        # step near the edge of stability misses on some seeds) replaces the best effort.
+        winner = next((e for e in backoff if e.all_reached), winner)
+    elif backoff:
         # A front's winner keeps a smaller step only while neither of its two costs grows by more.
         cost = (lambda e: np.array(e.both)) if prefer is not None else (lambda e: np.array([e.mean_cost]))
         limit = cost(winner) * (1.0 + spec.backoff_tolerance)
