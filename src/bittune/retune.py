@@ -182,9 +182,10 @@ def _narrowed(spec, cand: Candidate, space) -> dict:
     t = space.theory(cand.method, cand.compressor, cand.clients, cand.minibatch)
     out = {"methods": [cand.method],
            "compressors": [cand.compressor["name"]] if cand.method != "gd" else list(spec.compressors)}
-    # An anchored method (theory rule's search_anchor) draws its step over the anchor: narrow that range.
-    key, unit, (lo, hi) = (("step_range", t.step_size, spec.step_range) if t.search_anchor is None
-                           or cand.method == "gd" else ("anchor_range", t.search_anchor, t.search_range))
+    # An anchored method draws its step over its search anchor (Space._anchor): narrow that range.
+    anchor = space._anchor(cand.method, cand.compressor)
+    key, unit, (lo, hi) = ("step_range", t.step_size, spec.step_range) if anchor is None else \
+        ("anchor_range", *anchor)
     m = cand.step_size / unit
     out[key] = (max(lo, min(m / 4, hi)), min(hi, max(m * 4, lo)))
     if cand.method in SYNCED and cand.sync_probability:
