@@ -260,7 +260,7 @@ def grid_worker(job_path: str, batches: list, *, factor: float, threads: int) ->
             runs = simulate(ws.problem, method=first.method, compressor=comp, step_size=steps,
                             seeds=np.tile(seeds, len(batch)), target=ws.target, max_rounds=job.budget.max_rounds,
                             x0=ws.x0, params=first.params(), max_bits_per_worker=monitor.cap(),
-                            stall_window=stall_window(first.method, first.sync_probability), monitor=monitor)
+                            stall_window=stall_window(first.method, first.params(), comp), monitor=monitor)
             cap = monitor.cap()
             res = []
             for j in range(len(batch)):
@@ -342,11 +342,11 @@ class PlainObjective:
                 if t.user_attrs.get("reached") == len(self.seeds)]
         best = min((t.value for t in done), default=math.inf)
         cap = self.factor * best if math.isfinite(best) else None
-        runs = simulate(self.ws.problem, method=self.method,
-                        compressor=make_compressor(cand.compressor, D, n_workers=N),
+        compressor = make_compressor(cand.compressor, D, n_workers=N)
+        runs = simulate(self.ws.problem, method=self.method, compressor=compressor,
                         step_size=cand.step_size, seeds=self.seeds, target=self.ws.target,
                         max_rounds=MAX_ROUNDS, x0=self.ws.x0, params=cand.params(), max_bits_per_worker=cap,
-                        stall_window=stall_window(self.method, cand.sync_probability))
+                        stall_window=stall_window(self.method, cand.params(), compressor))
         value, _ = score(runs, target=self.ws.target, cap=cap)
         trial.set_user_attr("reached", int(sum(r.reached for r in runs)))
         return value

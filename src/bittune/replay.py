@@ -76,7 +76,7 @@ def replay(ws: Workspace, cfg: Config, *, seeds, source: str = "config") -> list
     return simulate(p, method=cfg.method, compressor=comp, step_size=cfg.step_size, seeds=seeds,
                     target=ws.target, max_rounds=ws.job.budget.max_rounds, x0=ws.x0, params=params,
                     max_bits_per_worker=ws.job.budget.max_bits_per_worker, loss_ref=ws.loss_ref,
-                    stall_window=stall_window(cfg.method, params.get("sync_probability")),
+                    stall_window=stall_window(cfg.method, params, comp),
                     precision=cfg.precision or "float64",  # as tuned, whatever the job says now
                     **link_kwargs(p, None, config_downlink(cfg, source), cfg.method,
                                   minibatch=config_minibatch(cfg, p, source)))

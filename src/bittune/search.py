@@ -56,8 +56,14 @@ SEED_LADDER = (1.0, 2.0, 4.0, 16.0, 64.0, 256.0)
 ANCHOR_LADDER = (0.25, 1.0, 2.0, 4.0, 8.0, 32.0)
 #: Methods with MARINA's sync probability p (searched as a multiplier of the theory p).
 SYNCED = ("marina", "pp_marina", "vr_marina")
-#: Minimum stall window in rounds; MARINA's grows like 1/p (docs/design.md measurements).
+#: Minimum stall window in rounds; MARINA's grows like 1/p, DIANA's like 1/alpha (docs/design.md,
+#: "Stall windows": runs that would converge are cut otherwise; own measurements, no outside source).
 STALL_ROUNDS = 100
+#: The MARINA family's window in expected rounds between syncs (10/p).
+SYNC_STALL = 10.0
+#: DIANA's window in time constants of its shifts (20/alpha): its ||grad f||^2 can rise for ~10/alpha
+#: rounds while the shifts learn the local gradients (measured: docs/design.md, "Stall windows").
+SHIFT_STALL = 20.0
 #: Cost between pruning checkpoints grows by this factor (common practice, no source).
 CHECKPOINT_GROWTH = 2.0
 #: The objective ``front``: a two-objective study, (uplink bits per worker, simulated seconds), both minimised.
@@ -336,10 +342,22 @@ def _clip(value: float, bounds: tuple) -> float:
 
 
 # -------------------------------------------------------------------- objective
-def stall_window(method: str, sync_probability=None):
-    """Rounds without progress before a trajectory counts as stalled: 100, MARINA max(100, 10/p)."""
-    if method in SYNCED and sync_probability is not None:
-        return np.maximum(STALL_ROUNDS, 10.0 / np.asarray(sync_probability, dtype=np.float64))
+def stall_window(method: str, params: dict | None = None, compressor=None):
+    """Rounds without progress before a trajectory counts as stalled (docs/design.md, "Stall windows").
+
+    ``params`` as :func:`bittune.simulate.simulate` takes them (scalars or one value per
+    trajectory). 100 rounds; the MARINA family max(100, 10/p); DIANA max(100, 20/alpha), its
+    shift rate alpha from ``params`` or else the method's default 1/(1 + omega) of ``compressor``.
+    """
+    params = params or {}
+    if method in SYNCED and params.get("sync_probability") is not None:
+        return np.maximum(STALL_ROUNDS, SYNC_STALL / np.asarray(params["sync_probability"], dtype=np.float64))
+    if method == "diana":
+        alpha = params.get("shift_rate")
+        if alpha is None and compressor is not None:
+            alpha = 1.0 / (1.0 + np.asarray(compressor.omega, dtype=np.float64))
+        if alpha is not None:
+            return np.maximum(STALL_ROUNDS, SHIFT_STALL / np.asarray(alpha, dtype=np.float64))
     return STALL_ROUNDS
 
 
@@ -429,7 +447,7 @@ class Objective:
         trial.set_user_attr("pid", os.getpid())
         trial.set_user_attr("candidate", _plain(cand.to_config()))
         comp = make_compressor(cand.compressor, self.problem.dim, n_workers=self.problem.n_workers)
-        window = stall_window(cand.method, cand.sync_probability)
+        window = stall_window(cand.method, cand.params(), comp)
         d = self.problem.dim
         if self.network is None:
             cost_at = lambda k, bits: bits  # noqa: E731

@@ -225,7 +225,7 @@ def _batches(ws, candidates: list[Candidate], seeds: list[int], network=None) ->
         out.append((idx, dict(method=first.method, compressor=comp, step_size=steps,
                               seeds=np.tile(seeds, len(idx)), target=ws.target, max_rounds=job.budget.max_rounds,
                               x0=ws.x0, params=params, max_bits_per_worker=job.budget.max_bits_per_worker,
-                              stall_window=stall_window(first.method, params.get("sync_probability")),
+                              stall_window=stall_window(first.method, params, comp),
                               loss_ref=ws.loss_ref, precision=job.engine.precision,
                               **link_kwargs(ws.problem, network, getattr(job, "downlink", None), first.method,
                                             minibatch=getattr(job, "minibatch", None)))))
