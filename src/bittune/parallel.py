@@ -45,6 +45,7 @@ def start_batch(problem, kwargs: dict, *, jobs: int) -> Callable[[], list[Trajec
         from joblib import Parallel, delayed
 
         results = Parallel(n_jobs=jobs, backend="loky", return_as="generator")([delayed(_run)(problem, kwargs)])
-        return lambda: next(results)
+        # Run the generator to its end: one left open warns, when collected, that tasks were cancelled.
+        return lambda: list(results)[0]
     runs = simulate(problem, **kwargs)
     return lambda: runs
