@@ -33,7 +33,7 @@ from optuna.trial import TrialState
 
 from .compressors import COMPRESSORS, make_compressor
 from .job import BIDIRECTIONAL
-from .methods import dense_bits
+from .methods import METHODS, dense_bits
 from .constants import Constants
 from .cost import cost_function
 from .simulate import Trajectory, simulate
@@ -347,7 +347,7 @@ def stall_window(method: str, params: dict | None = None, compressor=None):
 
     ``params`` as :func:`bittune.simulate.simulate` takes them (scalars or one value per
     trajectory). 100 rounds; the MARINA family max(100, 10/p); DIANA max(100, 20/alpha), its
-    shift rate alpha from ``params`` or else the method's default 1/(1 + omega) of ``compressor``.
+    shift rate alpha from ``params`` or else the method's own default for ``compressor``.
     """
     params = params or {}
     if method in SYNCED and params.get("sync_probability") is not None:
@@ -355,7 +355,7 @@ def stall_window(method: str, params: dict | None = None, compressor=None):
     if method == "diana":
         alpha = params.get("shift_rate")
         if alpha is None and compressor is not None:
-            alpha = 1.0 / (1.0 + np.asarray(compressor.omega, dtype=np.float64))
+            alpha = METHODS["diana"].params["shift_rate"](compressor)  # what the engine will run
         if alpha is not None:
             return np.maximum(STALL_ROUNDS, SHIFT_STALL / np.asarray(alpha, dtype=np.float64))
     return STALL_ROUNDS
