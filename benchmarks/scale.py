@@ -12,10 +12,11 @@ with the same trial budget and ``--jobs``, each arm in a child process of its ow
 
 It prints the wall time of each arm by phase (probe = everything before the
 search, search, selection = validation, back-off, report), the ratios against
-``one``, each arm's peak RSS (``os.wait4`` of its child: the largest of the
-child and the processes it started and reaped, plus the coordinator and the
-largest worker separately, and their sum bound coordinator + jobs x worker),
-and the three tuned configs' mean bits on the SAME fresh validation seeds
+``one``, each arm's peak memory (:class:`TreeMemory`, from /proc: the coordinator's
+own high-water mark, the largest worker's, their bound coordinator + jobs x worker,
+and the largest sampled sum over the whole process tree; ru_maxrss and ``wait4``
+cannot be used, exec hands a parent's high-water mark down to the child), and
+the three tuned configs' mean bits on the SAME fresh validation seeds
 (:func:`bittune.select.validation_seeds`, run by :func:`bittune.select.evaluate`
 in float64 in one more child), so speed is never bought with quality.
 
@@ -137,24 +138,101 @@ def maxrss_gib(who) -> float:
     return resource.getrusage(who).ru_maxrss / 2**20
 
 
+def _status_kib(pid: int, key: str) -> int:
+    """``key`` (VmRSS, VmHWM) of /proc/PID/status in KiB; 0 once the process is gone."""
+    try:
+        with open(f"/proc/{pid}/status") as fh:
+            for line in fh:
+                if line.startswith(key + ":"):
+                    return int(line.split()[1])
+    except (OSError, ValueError):
+        pass
+    return 0
+
+
+def _descendants(root: int) -> list[int]:
+    """Pids of the living descendants of ``root`` (from the ppid field of /proc/*/stat)."""
+    parent = {}
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                with open(f"/proc/{entry}/stat") as fh:
+                    parent[int(entry)] = int(fh.read().rsplit(")", 1)[1].split()[1])
+            except (OSError, ValueError, IndexError):
+                continue
+    out, todo = [], [root]
+    while todo:
+        p = todo.pop()
+        kids = [c for c, pp in parent.items() if pp == p]
+        out += kids
+        todo += kids
+    return out
+
+
+class TreeMemory:
+    """Peak memory of this process and its descendants, sampled every ``every`` seconds.
+
+    ru_maxrss cannot tell them apart on Linux: exec copies the parent's high-water mark
+    into the new program's (kernel ``exec_mmap``: ``setmax_mm_hiwater_rss``), so every
+    worker started by a coordinator at 2.8 GiB reports >= 2.8 GiB from ``getrusage``
+    and from ``wait4`` (measured: coordinator and worker exactly equal). VmHWM in
+    /proc/PID/status is the high-water mark of the process's own address space only.
+    Kept: this process's VmHWM, each descendant's largest VmHWM seen, and the largest
+    sampled sum of VmRSS over the whole tree (what was resident at one moment).
+    """
+
+    def __init__(self, every: float = 0.25):
+        import threading
+
+        self.every, self.worker_kib, self.tree_kib = every, {}, 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+
+    def _sample(self) -> None:
+        me = os.getpid()
+        kids = _descendants(me)
+        total = _status_kib(me, "VmRSS")
+        for pid in kids:
+            total += _status_kib(pid, "VmRSS")
+            self.worker_kib[pid] = max(self.worker_kib.get(pid, 0), _status_kib(pid, "VmHWM"))
+        self.tree_kib = max(self.tree_kib, total)
+
+    def _run(self) -> None:
+        while not self._stop.wait(self.every):
+            self._sample()
+
+    def stop(self) -> dict:
+        """Stop sampling; GiB: ``self`` (VmHWM), ``worker`` (largest descendant), ``tree`` (sampled sum)."""
+        self._sample()
+        self._stop.set()
+        self._thread.join()
+        gib = 2.0**20
+        return {"self": _status_kib(os.getpid(), "VmHWM") / gib,
+                "worker": max(self.worker_kib.values(), default=0) / gib, "tree": self.tree_kib / gib}
+
+
 def child_tune(job: str, out: str, label: str) -> int:
-    """One arm: tune, then write wall times by phase, the winner and this process's peak RSS."""
+    """One arm: tune, then write wall times by phase, the winner and the peak memory."""
     from bittune.tune import tune
 
     log = Log(label)
+    memory = TreeMemory()
     t0 = time.perf_counter()
     result = tune(job, output=Path(out) / f"{label}-config.yaml", run_dir=Path(out) / f"{label}.run", progress=log)
     wall = time.perf_counter() - t0
-    # Reap the loky workers so that their peak RSS counts in RUSAGE_CHILDREN.
+    # Reap the loky workers (their last samples are taken before they go).
     from joblib.externals.loky import get_reusable_executor
 
+    mem = memory.stop()
     get_reusable_executor().shutdown(wait=True)
     search_at, select_at = log.marks.get("search:", 0.0), log.marks.get("select:", wall)
     w = result.selection.winner
     doc = {"wall": wall, "probe": search_at, "search": select_at - search_at, "select": wall - select_at,
            "trials": result.trials, "winner": w.candidate.to_config(), "bits": w.mean_bits,
            "reached": int(sum(r.reached for r in w.runs)), "seeds": len(w.runs),
-           "rss_self": maxrss_gib(resource.RUSAGE_SELF), "rss_workers": maxrss_gib(resource.RUSAGE_CHILDREN),
+           "rss_self": mem["self"], "rss_workers": mem["worker"], "rss_tree": mem["tree"],
+           "maxrss_self": maxrss_gib(resource.RUSAGE_SELF), "maxrss_children": maxrss_gib(resource.RUSAGE_CHILDREN),
            "load": os.getloadavg()[0]}
     Path(out, f"{label}.json").write_text(json.dumps(doc))
     return 0
@@ -179,22 +257,18 @@ def child_quality(job: str, out: str) -> int:
     return 0
 
 
-def run_child(args: list[str]) -> float:
-    """Run this script with ``args`` in a child process (niced like its parent); its peak RSS in GiB
-    (os.wait4: the child and the descendants it reaped)."""
-    proc = subprocess.Popen([sys.executable, __file__, *args])
-    _, status, usage = os.wait4(proc.pid, 0)
-    proc.returncode = os.waitstatus_to_exitcode(status)
-    if proc.returncode != 0:
-        raise SystemExit(f"child {' '.join(args)} failed with exit code {proc.returncode}")
-    return usage.ru_maxrss / 2**20
+def run_child(args: list[str]) -> None:
+    """Run this script with ``args`` in a child process (niced like its parent)."""
+    code = subprocess.run([sys.executable, __file__, *args]).returncode
+    if code != 0:
+        raise SystemExit(f"child {' '.join(args)} failed with exit code {code}")
 
 
 # ------------------------------------------------------------------------ parent
 @dataclass
 class Outcome:
     cfg: tuple
-    arms: dict  # arm -> child document (+ "rss" from wait4)
+    arms: dict  # arm -> child document
     quality: dict
     data_seconds: float
 
@@ -224,8 +298,8 @@ def run_config(cfg, *, trials: int, jobs: int, batch: int, folder: Path) -> Outc
     for arm in ARMS:
         tb, prec = settings[arm]
         job = write_job(folder, arm, cfg, data=data, trials=trials, jobs=jobs, trial_batch=tb, precision=prec)
-        rss = run_child(["--child-tune", str(job), str(folder), arm])
-        arms[arm] = {**json.loads((folder / f"{arm}.json").read_text()), "rss": rss}
+        run_child(["--child-tune", str(job), str(folder), arm])
+        arms[arm] = json.loads((folder / f"{arm}.json").read_text())
         print(f"  {name(cfg)} {arm}: {arms[arm]['wall']:.0f} s, load {arms[arm]['load']:.1f}", file=sys.stderr)
     job = write_job(folder, "quality", cfg, data=data, trials=trials, jobs=1, trial_batch=1, precision="float64")
     run_child(["--child-quality", str(job), str(folder)])
@@ -239,7 +313,7 @@ def report(o: Outcome, *, jobs: int) -> list[tuple[str, bool, str]]:
     kind = f"sparse, {DENSITY:.0%} density" if sparse else "dense"
     print(f"\n{N:,} x {d:,} ({kind}) over {n} workers; data written in {o.data_seconds:.0f} s")
     print(f"{'arm':<8} {'trials':>6} {'probe s':>8} {'search s':>9} {'select s':>9} {'wall s':>7} {'x one':>6} "
-          f"{'search x':>8} {'RSS GiB':>8} {'coord':>6} {'worker':>7} {'bound':>6} {'fresh bits':>12} "
+          f"{'search x':>8} {'coord':>6} {'worker':>7} {'bound':>6} {'tree':>6} {'fresh bits':>12} "
           f"{'reached':>7} {'/ one':>6} {'load':>5}")
     one = o.arms["one"]
     bits = [float(np.mean(b)) for b in o.quality["bits"]]
@@ -247,13 +321,14 @@ def report(o: Outcome, *, jobs: int) -> list[tuple[str, bool, str]]:
     for i, arm in enumerate(ARMS):
         a = o.arms[arm]
         bound = a["rss_self"] + jobs * a["rss_workers"]
+        peak = max(bound, a["rss_tree"])  # the tree's sum also holds helpers (loky's tracker, the report's browser)
         done = a["trials"].get("complete", 0) + a["trials"].get("pruned", 0) if isinstance(a["trials"], dict) else "?"
         print(f"{arm:<8} {done!s:>6} {a['probe']:8.1f} {a['search']:9.1f} {a['select']:9.1f} {a['wall']:7.0f} "
-              f"{one['wall'] / a['wall']:6.2f} {one['search'] / max(a['search'], 1e-9):8.2f} {a['rss']:8.2f} "
-              f"{a['rss_self']:6.2f} {a['rss_workers']:7.2f} {bound:6.2f} {bits[i]:12,.0f} "
+              f"{one['wall'] / a['wall']:6.2f} {one['search'] / max(a['search'], 1e-9):8.2f} "
+              f"{a['rss_self']:6.2f} {a['rss_workers']:7.2f} {bound:6.2f} {a['rss_tree']:6.2f} {bits[i]:12,.0f} "
               f"{o.quality['reached'][i]:>3}/{len(o.quality['seeds']):<3} {bits[i] / bits[0]:6.3f} {a['load']:5.1f}")
-        checks.append((f"{name(o.cfg)} {arm}: peak RSS <= {GOAL_RSS_GIB:g} GiB", bound <= GOAL_RSS_GIB,
-                       f"coordinator + {jobs} x worker = {bound:.2f} GiB"))
+        checks.append((f"{name(o.cfg)} {arm}: peak RSS <= {GOAL_RSS_GIB:g} GiB", peak <= GOAL_RSS_GIB,
+                       f"max(coordinator + {jobs} x worker, tree) = {peak:.2f} GiB"))
         if arm != "one":
             ok = o.quality["reached"][i] == len(o.quality["seeds"]) and bits[i] <= (1 + QUALITY) * bits[0]
             checks.append((f"{name(o.cfg)} {arm}: fresh-seed bits within {QUALITY:.0%} of one trial at a time",

@@ -118,6 +118,8 @@ class _Counted:
 
     def local_grads(self, X, *, with_loss: bool = False):
         parts = [self.problem.local_grads(c, with_loss=with_loss) for c in self._chunks(np.asarray(X, float))]
+        if len(parts) == 1:  # no copy of a whole call's gradients
+            return parts[0][0], (parts[0][1] if with_loss else None)
         grads = np.concatenate([g for g, _ in parts])
         return grads, (np.concatenate([f for _, f in parts]) if with_loss else None)
 
@@ -187,22 +189,37 @@ def _check(oracle, pts, grads, losses, *, rng, directions, threshold, start, cal
 
 
 def _hvp(oracle, pts: np.ndarray, h: np.ndarray, dirs: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
-    """H_i(x_p) dirs[s, p, i] for every stage s, point p, worker i: (S, P, n, d), one call.
+    """H_i(x_p) dirs[s, p, i] for every stage s, point p, worker i: (S, P, n, d).
 
     With ``weights`` (S, P, n, m_max) the Hessian is that of sum_j w_j f_ij (the minibatch
     oracle ``weighted_grads``) instead of f_i's.
+
+    The 2 S P shifted points x_p +- h_p u (n d numbers each) are built and differenced a
+    chunk of (s, p) pairs at a time, ``_MAX_ELEMENTS`` numbers per oracle call as
+    :class:`_Counted` splits them (so the calls counted are those of one call on all the
+    points): only the (S, P, n, d) result is ever whole in memory. At d = 20,000 over 16
+    workers the whole point set of one power iteration was 3 GB (docs/design.md, "Scale").
     """
     S, P, n, d = dirs.shape
-    unit, norm = _unit(dirs, axis=3)  # worker i moves along its own unit direction
-    shift = h[None, :, None, None] * unit
-    X = (pts[None, :, None, :] + np.stack([shift, -shift])).reshape(-1, n, d)  # (2, S, P, n, d) flat
-    if weights is None:
-        G, _ = oracle.local_grads(X)
-    else:
-        W = weights.reshape(-1, n, weights.shape[-1])
-        G = oracle.weighted_grads(X, np.concatenate([W, W]))
-    G = G.reshape(2, S, P, n, d)
-    return (G[0] - G[1]) / (2.0 * h[None, :, None, None]) * norm
+    out = np.empty((S * P, n, d))
+    flat = dirs.reshape(S * P, n, d)
+    pair = max(1, _MAX_ELEMENTS // (2 * n * d))  # (s, p) pairs per call: 2 shifted points each
+    p_of = np.tile(np.arange(P), S)  # the point of flat row r = s P + p
+    W = None if weights is None else weights.reshape(S * P, n, weights.shape[-1])
+    for a in range(0, S * P, pair):
+        b = min(a + pair, S * P)
+        unit, norm = _unit(flat[a:b], axis=2)  # worker i moves along its own unit direction
+        hp = h[p_of[a:b], None, None]
+        shift = hp * unit
+        base = pts[p_of[a:b], None, :]
+        X = np.concatenate([base + shift, base - shift])  # (2 q, n, d): the q pairs' + then - points
+        if W is None:
+            G, _ = oracle.local_grads(X)
+        else:
+            G = oracle.weighted_grads(X, np.concatenate([W[a:b], W[a:b]]))
+        q = b - a
+        out[a:b] = (G[:q] - G[q:]) / (2.0 * hp) * norm
+    return out.reshape(S, P, n, d)
 
 
 def _power(oracle, pts: np.ndarray, *, iters: int, rng, per_point: bool = False) -> dict:
@@ -243,6 +260,7 @@ def _power(oracle, pts: np.ndarray, *, iters: int, rng, per_point: bool = False)
         for key, value in (("L_workers", nv[..., 0]), ("L", nu[:, 0]), ("L_plus", nJw.ravel()),
                            ("L_plus", nJz[:, 0]), ("L_pm", nKw.ravel()), ("L_pm", nKz[:, 0])):
             np.maximum(best[key], np.nan_to_num(value), out=best[key])
+        del A, B, C, D, E, F, Kw, spread  # free this iteration's products before the next call's
     return best if per_point else {key: value.max(axis=0) for key, value in best.items()}
 
 
