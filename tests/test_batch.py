@@ -288,3 +288,30 @@ def test_a_numerical_fault_in_a_batch_fails_only_its_trial(cancer, monkeypatch):
     assert [t.params["marina.step_mult"] for t in failed] == [5.0]
     assert "overflow" in failed[0].user_attrs["failed_reason"]
     assert [t.state for t in trials[:4]].count(TrialState.COMPLETE) == 3
+
+
+@pytest.mark.parametrize("batch,jobs,budget,expected", [
+    (8, 2, 8, 4),  # two processes share 8 trials: 4 each, not 8 in the first and none in the second
+    (8, 2, 60, 8),  # a large budget keeps the asked batch size
+    (8, 1, 8, 8),  # one process: its share is the whole budget
+    (8, 3, 10, 4),  # ceil(10 / 3)
+    (4, 8, 5, 1),  # fewer trials than processes: one trial at a time
+    (1, 2, 60, 1),  # the default stays one at a time
+])
+def test_batch_never_takes_more_than_its_process_share(batch, jobs, budget, expected, monkeypatch):
+    """search.batch_size caps search.trial_batch at ceil(budget / jobs) (common practice, no
+    source: an even split of the budget over the processes), and run_trials hands that size on."""
+    from types import SimpleNamespace
+
+    import bittune.batch
+    from bittune.search import batch_size
+
+    spec = SimpleNamespace(trial_batch=batch, jobs=jobs)
+    assert batch_size(spec, budget) == expected
+    seen = []
+    monkeypatch.setattr(bittune.batch, "run_refilling",
+                        lambda study, obj, *, budget, size, poll: seen.append(size) or 0)
+    objective = SimpleNamespace(space=SimpleNamespace(spec=spec))
+    if expected > 1:
+        run_trials(None, objective, budget=budget)
+        assert seen == [expected]

@@ -41,7 +41,7 @@ from .theory import fits, measured_contraction, theory_point
 
 __all__ = [
     "Candidate", "Space", "Objective", "score", "open_storage", "open_study", "enqueue_seeds",
-    "fail_stale_trials", "run_trials", "search_seeds", "stall_window", "COUNTED", "mask_url", "TrialPlan",
+    "fail_stale_trials", "run_trials", "batch_size", "search_seeds", "stall_window", "COUNTED", "mask_url", "TrialPlan",
     "trial_value", "FRONT_DIRECTIONS", "enqueue_refinement", "refine_plan",
 ]
 
@@ -871,6 +871,17 @@ def _fail_beatless_trials(study: optuna.Study) -> int:
     return len(failed)
 
 
+def batch_size(spec, budget: int) -> int:
+    """Trials one process keeps in its engine batch: ``search.trial_batch``, but at most its share
+    ceil(budget / jobs) of the budget, so that a batch never asks the trials the other ``--jobs``
+    processes were to run (8 trials, 2 jobs, trial_batch 8: 4 each, where the first process took
+    all 8 and the second waited; measured on the scale benchmark's sparse sample, docs/design.md,
+    "Batched trials")."""
+    size = int(getattr(spec, "trial_batch", 1))
+    jobs = max(1, int(getattr(spec, "jobs", 1)))
+    return max(1, min(size, -(-int(budget) // jobs)))
+
+
 def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: float = 1.0) -> int:
     """Run trials in this process until ``budget`` trials are finished (complete or pruned).
 
@@ -883,7 +894,7 @@ def run_trials(study: optuna.Study, objective: Objective, *, budget: int, poll: 
     processes) is failed with the reason recorded. Returns how many trials this
     process ran.
     """
-    size = int(getattr(objective.space.spec, "trial_batch", 1))
+    size = batch_size(objective.space.spec, budget)
     if size > 1:
         from .batch import run_refilling
 
