@@ -173,11 +173,12 @@ class TreeMemory:
     """Peak memory of this process and its descendants, sampled every ``every`` seconds.
 
     ru_maxrss cannot tell them apart on Linux: exec copies the parent's high-water mark
-    into the new program's (kernel ``exec_mmap``: ``setmax_mm_hiwater_rss``), so every
-    worker started by a coordinator at 2.8 GiB reports >= 2.8 GiB from ``getrusage``
-    and from ``wait4`` (measured: coordinator and worker exactly equal). VmHWM in
-    /proc/PID/status is the high-water mark of the process's own address space only.
-    Kept: this process's VmHWM, each descendant's largest VmHWM seen, and the largest
+    into the new program's (from memory: the kernel's ``exec_mmap``), so every worker
+    started by a coordinator at 2.8 GiB reports >= 2.8 GiB from ``getrusage`` and from
+    ``wait4`` (measured: a child exec'd by a process at 1.03 GiB reports ru_maxrss 1.03 GiB
+    and VmHWM 13 MB). VmHWM in /proc/PID/status is the high-water mark of the process's own
+    address space only. Kept: this process's VmHWM, each descendant's largest VmHWM seen
+    (a worker that peaks and exits within one interval can be missed), and the largest
     sampled sum of VmRSS over the whole tree (what was resident at one moment).
     """
 

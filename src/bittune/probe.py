@@ -118,8 +118,6 @@ class _Counted:
 
     def local_grads(self, X, *, with_loss: bool = False):
         parts = [self.problem.local_grads(c, with_loss=with_loss) for c in self._chunks(np.asarray(X, float))]
-        if len(parts) == 1:  # no copy of a whole call's gradients
-            return parts[0][0], (parts[0][1] if with_loss else None)
         grads = np.concatenate([g for g, _ in parts])
         return grads, (np.concatenate([f for _, f in parts]) if with_loss else None)
 
