@@ -34,7 +34,6 @@ import argparse
 import json
 import math
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -133,11 +132,6 @@ search:
 
 
 # ---------------------------------------------------------------------- children
-def maxrss_gib(who) -> float:
-    """ru_maxrss (KiB on Linux) in GiB."""
-    return resource.getrusage(who).ru_maxrss / 2**20
-
-
 def _status_kib(pid: int, key: str) -> int:
     """``key`` (VmRSS, VmHWM) of /proc/PID/status in KiB; 0 once the process is gone."""
     try:
@@ -152,18 +146,18 @@ def _status_kib(pid: int, key: str) -> int:
 
 def _descendants(root: int) -> list[int]:
     """Pids of the living descendants of ``root`` (from the ppid field of /proc/*/stat)."""
-    parent = {}
+    children: dict[int, list[int]] = {}
     for entry in os.listdir("/proc"):
         if entry.isdigit():
             try:
                 with open(f"/proc/{entry}/stat") as fh:
-                    parent[int(entry)] = int(fh.read().rsplit(")", 1)[1].split()[1])
+                    ppid = int(fh.read().rsplit(")", 1)[1].split()[1])
             except (OSError, ValueError, IndexError):
                 continue
+            children.setdefault(ppid, []).append(int(entry))
     out, todo = [], [root]
     while todo:
-        p = todo.pop()
-        kids = [c for c, pp in parent.items() if pp == p]
+        kids = children.get(todo.pop(), [])
         out += kids
         todo += kids
     return out
@@ -233,7 +227,6 @@ def child_tune(job: str, out: str, label: str) -> int:
            "trials": result.trials, "winner": w.candidate.to_config(), "bits": w.mean_bits,
            "reached": int(sum(r.reached for r in w.runs)), "seeds": len(w.runs),
            "rss_self": mem["self"], "rss_workers": mem["worker"], "rss_tree": mem["tree"],
-           "maxrss_self": maxrss_gib(resource.RUSAGE_SELF), "maxrss_children": maxrss_gib(resource.RUSAGE_CHILDREN),
            "load": os.getloadavg()[0]}
     Path(out, f"{label}.json").write_text(json.dumps(doc))
     return 0

@@ -298,7 +298,6 @@ def test_logistic_local_estimates_match_exact_hessians():
     _assert_chains(local["L"], local["L_plus"], local["L_pm"], local["L_workers"], rtol=1e-5)
 
 
-
 def test_hessian_products_split_over_calls_match_exact_hessians(monkeypatch):
     """The power iteration's shifted points go to the oracle a chunk of (stage, point) pairs at a
     time (probe._hvp; at d = 20,000 over 16 workers one whole call was 3 GB). Forced down to one

@@ -100,6 +100,11 @@ class ProbeReport:
                 "gradient_check": self.gradient_check.to_dict(), "sample_stability": self.sample_stability}
 
 
+def _rows_per_call(numbers_per_row: int) -> int:
+    """Points per oracle call: ``_MAX_ELEMENTS`` numbers, at least one point."""
+    return max(1, _MAX_ELEMENTS // numbers_per_row)
+
+
 class _Counted:
     """The oracle of ``problem``, counting calls and points (large calls are split)."""
 
@@ -110,8 +115,7 @@ class _Counted:
         self.calls = self.rows = 0
 
     def _chunks(self, X: np.ndarray) -> list[np.ndarray]:
-        per_row = int(np.prod(X.shape[1:])) * (self.n_workers if X.ndim == 2 else 1)
-        step = max(1, _MAX_ELEMENTS // per_row)
+        step = _rows_per_call(int(np.prod(X.shape[1:])) * (self.n_workers if X.ndim == 2 else 1))
         self.calls += -(-X.shape[0] // step)
         self.rows += X.shape[0]
         return [X[i : i + step] for i in range(0, X.shape[0], step)]
@@ -193,15 +197,16 @@ def _hvp(oracle, pts: np.ndarray, h: np.ndarray, dirs: np.ndarray, weights: np.n
     oracle ``weighted_grads``) instead of f_i's.
 
     The 2 S P shifted points x_p +- h_p u (n d numbers each) are built and differenced a
-    chunk of (s, p) pairs at a time, ``_MAX_ELEMENTS`` numbers per oracle call as
-    :class:`_Counted` splits them (so the calls counted are those of one call on all the
-    points): only the (S, P, n, d) result is ever whole in memory. At d = 20,000 over 16
+    chunk of (s, p) pairs at a time, as many points per oracle call as :class:`_Counted`
+    would put in one (``_rows_per_call``, rounded down to whole pairs; so the calls are
+    those of one call on all the points when that count is even, one more at most
+    otherwise): only the (S, P, n, d) result is ever whole in memory. At d = 20,000 over 16
     workers the whole point set of one power iteration was 3 GB (docs/design.md, "Scale").
     """
     S, P, n, d = dirs.shape
     out = np.empty((S * P, n, d))
     flat = dirs.reshape(S * P, n, d)
-    pair = max(1, _MAX_ELEMENTS // (2 * n * d))  # (s, p) pairs per call: 2 shifted points each
+    pair = max(1, _rows_per_call(n * d) // 2)  # (s, p) pairs per call: 2 shifted points each
     p_of = np.tile(np.arange(P), S)  # the point of flat row r = s P + p
     W = None if weights is None else weights.reshape(S * P, n, weights.shape[-1])
     for a in range(0, S * P, pair):
